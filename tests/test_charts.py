@@ -1,0 +1,168 @@
+"""Chart builders: valid Vega-Lite, status colours always paired with words, offline SVG."""
+from __future__ import annotations
+
+import datetime as dt
+import json
+import re
+
+import altair as alt
+import polars as pl
+import pytest
+
+from fleetwatch import charts as ch
+from fleetwatch import views as vw
+from fleetwatch.schema import STATUS_LEVELS
+from fleetwatch.views import IsoWeek
+from report_lake import FrameLake, synthetic_tables
+
+# Okabe & Ito, "Color Universal Design (CUD): how to make figures and presentations that
+# are friendly to colorblind people" (2008): the eight-colour set the palette builds on.
+OKABE_ITO = {"#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7",
+             "#000000"}
+
+
+@pytest.fixture(scope="module")
+def lake_week():
+    tables, truth = synthetic_tables(units=16)
+    return FrameLake(tables), IsoWeek.parse(truth.report_week)
+
+
+def _spec(chart) -> dict:
+    return chart.to_dict()          # validates against the Vega-Lite schema
+
+
+def _datasets(spec: dict) -> list[dict]:
+    return [row for rows in spec.get("datasets", {}).values() for row in rows]
+
+
+def _walk(spec, key):
+    """Every value stored under ``key`` anywhere in a spec."""
+    if isinstance(spec, dict):
+        for k, v in spec.items():
+            if k == key:
+                yield v
+            yield from _walk(v, key)
+    elif isinstance(spec, list):
+        for v in spec:
+            yield from _walk(v, key)
+
+
+def test_status_palette_words_symbols_and_colour_source():
+    for s in STATUS_LEVELS:
+        entry = ch.STATUS_COLOURS[s]
+        assert entry["word"] == s and entry["symbol"] and entry["colour"] in OKABE_ITO
+    colours = [ch.STATUS_COLOURS[s]["colour"] for s in ch.STATUS_COLOURS]
+    symbols = [ch.STATUS_COLOURS[s]["symbol"] for s in ch.STATUS_COLOURS]
+    assert len(set(colours)) == len(colours) and len(set(symbols)) == len(symbols)
+    assert ch.status_word("alert") == "\u25b2 alert"
+    assert ch.status_word(None) == ch.status_word("unknown")
+
+
+def test_status_counts_chart_pairs_colour_with_word(lake_week):
+    lake, wk = lake_week
+    counts = vw.status_counts(vw.fleet_overview(lake, wk.sunday))
+    spec = _spec(ch.status_counts_chart(counts))
+    texts = {r["text"] for r in _datasets(spec)}
+    assert texts == {"\u25cf normal: 10", "\u25c6 watch: 4", "\u25b2 alert: 2"}
+    scales = [c["scale"] for c in _walk(spec, "color") if isinstance(c, dict) and "scale" in c]
+    assert scales and scales[0]["range"] == [ch.STATUS_COLOURS[s]["colour"]
+                                             for s in ("normal", "watch", "alert")]
+    assert scales[0]["domain"] == [ch.status_word(s) for s in ("normal", "watch", "alert")]
+
+
+def test_unit_slip_chart_has_points_trend_limit_band_and_maintenance(lake_week):
+    lake, wk = lake_week
+    series = vw.unit_slip_series(lake, "L1-U01", wk.sunday - dt.timedelta(days=90), wk.sunday)
+    maint = vw.maintenance_markers(lake, "L1-U01")
+    spec = _spec(ch.unit_slip_chart(series, maint))
+    marks = [m if isinstance(m, str) else m["type"] for m in _walk(spec, "mark")]
+    assert {"circle", "line", "rule", "rect", "text"} <= set(marks)
+    rows = _datasets(spec)
+    assert any(r.get("y") == pytest.approx(0.05) for r in rows)          # the limit rule
+    assert any(r.get("label") == "inspection" for r in rows)            # maintenance
+    band = [r for r in rows if "high_open" in r][0]
+    assert band["low"] < band["high"]                                   # ISO dates sort
+    assert "limit reached between" in " ".join(spec["title"]["subtitle"])
+    assert "dashed: forecast" in " ".join(spec["title"]["subtitle"])   # the line legend
+    # days are handed to Vega as plain dates on a UTC scale (no local-time shift)
+    assert all(re.fullmatch(r"\d{4}-\d{2}-\d{2}", r["day"]) for r in rows if "day" in r)
+    assert {"type": "utc"} in list(_walk(spec, "scale"))
+
+
+def test_creep_and_events_use_shape_or_dash_besides_colour(lake_week):
+    lake, wk = lake_week
+    creep = _spec(ch.creep_chart(vw.creep_week_vs_reference(lake, "L1-U01", wk)))
+    assert list(_walk(creep, "shape")) and list(_walk(creep, "strokeDash"))
+    assert "2.56" in creep["title"]["subtitle"] or "x reference" in creep["title"]["subtitle"]
+    t0, t1 = wk.bounds_utc()
+    ev = _spec(ch.events_timeline_chart(vw.unit_events(lake, start=t0, end=t1),
+                                        vw.maintenance_markers(lake, start=t0, end=t1),
+                                        t0, t1, by="unit_id"))
+    shapes = [s for s in _walk(ev, "shape") if isinstance(s, dict)]
+    assert shapes and shapes[0]["scale"]["domain"] == ["gross slip", "stall",
+                                                       "sensor flatline"]
+    assert any(r.get("label") == "L1-U01: inspection" for r in _datasets(ev))
+
+
+@pytest.mark.parametrize("name", [
+    "dist", "ratio", "power_measured", "power_residual", "temperature", "drift", "drift_fleet",
+    "energy", "completeness", "anomaly", "history", "week_events"])
+def test_every_builder_gives_a_valid_spec(lake_week, name):
+    lake, wk = lake_week
+    t0, t1 = wk.bounds_utc()
+    build = {
+        "dist": lambda: ch.fleet_slip_distribution_chart(vw.fleet_slip_distribution(lake),
+                                                         0.05),
+        "ratio": lambda: ch.ratio_chart(vw.ratio_series(lake, "L1-U03", max_points=300)),
+        "power_measured": lambda: ch.power_chart(vw.power_series(lake, "L1-U01",
+                                                                 max_points=300)),
+        "power_residual": lambda: ch.power_chart(vw.power_series(lake, "L1-U02",
+                                                                 max_points=300)),
+        "temperature": lambda: ch.temperature_chart(vw.temperature_series(lake, "L1-U01",
+                                                                          max_points=300)),
+        "drift": lambda: ch.motor_drift_chart(vw.motor_drift(lake, "L1-U06")),
+        "drift_fleet": lambda: ch.motor_drift_fleet_chart(
+            vw.motor_drift(lake, start=wk.monday, end=wk.sunday), top=5),
+        "energy": lambda: ch.energy_chart(vw.energy_summary(lake, wk.monday, wk.sunday),
+                                          top=5),
+        "completeness": lambda: ch.completeness_chart(
+            vw.data_quality(lake, wk.monday, wk.sunday).completeness, top=5),
+        "anomaly": lambda: ch.anomaly_scores_chart(vw.anomaly_scores(lake, "L1-U01"), 0.62),
+        "history": lambda: ch.health_history_chart(vw.health_history(lake, "L1-U05")),
+        "week_events": lambda: ch.events_timeline_chart(vw.unit_events(lake, start=t0, end=t1),
+                                                        None, t0, t1, by="unit_id"),
+    }[name]
+    chart = build()
+    assert isinstance(chart, alt.TopLevelMixin)
+    spec = _spec(chart)
+    assert _datasets(spec), "chart carries its data inline"
+    if name in ("drift_fleet", "energy", "completeness"):
+        # says it is truncated (the silent unit has no energy or motor fit that week)
+        assert re.search(r"5 of 1[56] units", json.dumps(spec["title"]))
+
+
+def test_power_chart_switches_to_residual_without_torque(lake_week):
+    lake, _ = lake_week
+    with_t = json.dumps(_spec(ch.power_chart(vw.power_series(lake, "L1-U01", max_points=50))))
+    without = json.dumps(_spec(ch.power_chart(vw.power_series(lake, "L1-U02", max_points=50))))
+    assert "efficiency (measured)" in with_t and "power residual" not in with_t
+    assert "power residual (%)" in without and "efficiency (measured)" not in without
+
+
+def test_empty_frames_give_a_no_data_chart():
+    empty = pl.DataFrame(schema={"unit_id": pl.String, "week_start": pl.Date,
+                                 "r_drift_pct": pl.Float64, "k_e_drift_pct": pl.Float64})
+    spec = _spec(ch.motor_drift_chart(empty))
+    assert _datasets(spec) == [{"msg": "no data for this period"}]
+    spec = _spec(ch.events_timeline_chart(pl.DataFrame(schema={"kind": pl.String}), None))
+    assert "no events" in _datasets(spec)[0]["msg"]
+
+
+def test_to_svg_is_inline_and_offline(lake_week):
+    lake, wk = lake_week
+    svg = ch.to_svg(ch.status_counts_chart(vw.status_counts(vw.fleet_overview(lake))),
+                    title="Units & status")
+    assert svg.startswith('<svg role="img" aria-label="Units &amp; status"')
+    assert "http" not in svg and "xmlns" not in svg
+    assert "\u25b2 alert: 2" in svg                  # the word is drawn, not only the colour
+    assert svg.count("<svg") == 1 and svg.rstrip().endswith("</svg>")
