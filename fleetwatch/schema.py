@@ -13,7 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 __all__ = ["Column", "Table", "TABLES", "TELEMETRY_COLUMNS", "BASE_TABLES", "DERIVED_TABLES",
-           "table", "STATUS_LEVELS"]
+           "ADVISOR_TABLES", "table", "STATUS_LEVELS"]
 
 
 @dataclass(frozen=True)
@@ -260,7 +260,68 @@ DERIVED_TABLES = (
     ), key=("unit_id", "day"), written_by="health (models/health.py)"),
 )
 
-TABLES: dict[str, Table] = {t.name: t for t in BASE_TABLES + DERIVED_TABLES}
+# Advisor tables (advisor.py / softsensor.py read these tuples; declared here, once).
+_ADVICE_COLS = (
+    ("unit_id", "VARCHAR", "-", "Drive."),
+    ("line", "VARCHAR", "-", "Line (build) of the unit: unit_id up to the first '-'."),
+    ("n_out_lo_rpm", "DOUBLE", "rpm", "Duty bin: lowest output speed (inclusive)."),
+    ("n_out_hi_rpm", "DOUBLE", "rpm", "Duty bin: highest output speed (exclusive)."),
+    ("t_out_lo_nm", "DOUBLE", "N*m", "Duty bin: lowest output torque (inclusive)."),
+    ("t_out_hi_nm", "DOUBLE", "N*m", "Duty bin: highest output torque (exclusive)."),
+    ("ratio_used", "DOUBLE", "-", "Typical ratio used: time-weighted median commanded ratio "
+     "of the unit's windows in the bin."),
+    ("ratio_advised", "DOUBLE", "-", "Ratio with the least modelled input power inside the "
+     "limits (null when no advice)."),
+    ("ratio_min_obs", "DOUBLE", "-", "Lowest ratio observed for this duty in the windows "
+     "behind the advice (2nd percentile)."),
+    ("ratio_max_obs", "DOUBLE", "-", "Highest ratio observed for this duty (98th "
+     "percentile)."),
+    ("saving_w", "DOUBLE", "W", "Expected input-power saving while running this duty "
+     "(time-weighted mean over the unit's windows)."),
+    ("saving_kwh_week", "DOUBLE", "kWh/week", "Expected energy saving per week of data."),
+    ("saving_kwh_week_low", "DOUBLE", "kWh/week", "Lower end of the bootstrap interval."),
+    ("saving_kwh_week_high", "DOUBLE", "kWh/week", "Upper end of the bootstrap interval."),
+    ("windows", "BIGINT", "-", "Steady windows behind the advice (the unit's, or its line's "
+     "when basis is 'line')."),
+    ("unit_windows", "BIGINT", "-", "The unit's own steady windows in the bin."),
+    ("hours_per_week", "DOUBLE", "h/week", "Steady running time of the unit in this duty per "
+     "week of data."),
+    ("basis", "VARCHAR", "-", "unit (own windows) or line (pooled with same-line units)."),
+    ("starts_from_standstill", "BOOLEAN", "-", "The duty is entered from, or left into, "
+     "standstill: the advice is capped at max_start_ratio."),
+    ("limited_by", "VARCHAR", "-", "Limits that cut the search range (observed_range, "
+     "model_range, start_ratio, motor_speed, motor_voltage, motor_current), comma "
+     "separated.", ),
+    ("torque_source", "VARCHAR", "-", "measured (the unit logs t_out) or estimated (soft "
+     "sensor)."),
+    ("status", "VARCHAR", "-", "change (advised ratio differs and the interval excludes no "
+     "saving), keep (already at or near the best ratio, or saving not significant), "
+     "no_advice (see note)."),
+    ("note", "VARCHAR", "-", "Plain-language explanation."),
+)
+
+_TORQUE_ESTIMATE_COLS = (
+    ("unit_id", "VARCHAR", "-", "Drive."),
+    ("window_start", "TIMESTAMPTZ", "UTC", "Window start (as in `windows`)."),
+    ("t_out_est", "DOUBLE", "N*m", "Output torque of the window: the logged mean where the unit "
+     "measures it, else the soft-sensor estimate eta_T(i, T_shaft)*i*T_shaft."),
+    ("t_out_est_std", "DOUBLE", "N*m", "One standard deviation of the estimate (leave-one-unit-"
+     "out residual model); null where the torque is measured."),
+    ("source", "VARCHAR", "-", "measured (t_out logged) or estimated (soft sensor)."),
+)
+
+ADVISOR_TABLES = (
+    Table("advice", "Per unit and duty bin (output speed x output torque): the ratio with the "
+          "least modelled input power inside the observed and allowed range, and the energy it "
+          "would save.", tuple(_c(*c) for c in _ADVICE_COLS),
+          key=("unit_id", "n_out_lo_rpm", "t_out_lo_nm"), written_by="advise (advisor.py)"),
+    Table("torque_estimates", "Per unit and window: output torque, measured where logged, else "
+          "estimated by the soft sensor, with its uncertainty.",
+          tuple(_c(*c) for c in _TORQUE_ESTIMATE_COLS), key=("unit_id", "window_start"),
+          written_by="advise (softsensor.py)"),
+)
+
+TABLES: dict[str, Table] = {t.name: t for t in BASE_TABLES + DERIVED_TABLES + ADVISOR_TABLES}
 
 
 def table(name: str) -> Table:
