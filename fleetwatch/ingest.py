@@ -1,0 +1,1399 @@
+"""Ingest: read -> map -> validate -> split accepted/quarantined -> dedupe -> append.
+
+One file is one batch. Files are streamed in chunks of ``ingest_chunk_rows`` rows, so memory
+stays bounded whatever the file size. Per chunk, all checks are polars expressions (no Python
+loop over rows); accepted rows go to ``telemetry`` (or ``maintenance``), rejected rows to
+``quarantine`` with file, line, column, rule, message and the raw values as JSON.
+
+Row accounting per file: rows_read = accepted + quarantined + duplicates (blank lines are
+not rows). Duplicates are found by key ((unit_id, ts); maintenance: (unit_id, ts, action))
+within the file and against the lake: identical values are counted as duplicates and not
+written; the same key with other values is quarantined as ``conflicting_duplicate`` (the
+first row wins, nothing in the lake is overwritten).
+
+Atomicity: a batch is marked pending before its first write, writes its chunks, then its
+``batches`` ledger row, then clears the mark. Readers hide rows of batches that have no ledger
+row (see lake.py), and the next writer deletes the rows of a batch that was killed half way,
+so a re-run ends complete, without duplicates and with exact accounting.
+"""
+from __future__ import annotations
+
+import codecs
+import csv
+import glob as globmod
+import gzip
+import hashlib
+import json
+import os
+import secrets
+import tomllib
+import zlib
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Callable, Iterator
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import polars as pl
+import pyarrow as pa
+import pyarrow.dataset as pds
+import pyarrow.parquet as pq
+
+from .errors import InputError, UsageError
+from .lake import INGEST_BATCH_PREFIX, Lake
+from .units import COLUMN_QUANTITY, unit_factor
+
+__all__ = ["ingest_files", "IngestReport", "FileReport", "Mapping", "load_mapping",
+           "discover_files", "KINDS", "DEFAULT_RESETS_WEAR"]
+
+KINDS = ("telemetry", "maintenance")
+FIELDS = {
+    "telemetry": ("unit_id", "ts", "v_in", "i_in", "p_in", "n_in", "n_out", "ratio_cmd",
+                  "t_out", "temp"),
+    "maintenance": ("unit_id", "ts", "action", "note", "resets_wear"),
+}
+NUMERIC = ("v_in", "i_in", "p_in", "n_in", "n_out", "ratio_cmd", "t_out", "temp")
+KEYS = {"telemetry": ("unit_id", "ts"), "maintenance": ("unit_id", "ts", "action")}
+VALUES = {"telemetry": NUMERIC, "maintenance": ("note", "resets_wear")}
+DEFAULT_RESETS_WEAR = ("roller replaced", "roller changed", "wheel replaced",
+                       "cones reground", "overhaul")
+_WALK_SUFFIXES = (".csv", ".csv.gz", ".parquet", ".ndjson", ".jsonl", ".ndjson.gz",
+                  ".jsonl.gz", ".tsv", ".tsv.gz")
+_DELIMS = (",", ";", "\t", "|")
+_N_EXTRA = 4          # spare columns that catch rows with too many fields
+_C = "__"             # prefix of canonical columns while source columns are still present
+_TS_RE = (r"^(\d{4})[-/](\d{1,2})[-/](\d{1,2})"
+          r"(?:[T ](\d{1,2}):(\d{2})(?::(\d{2})(?:[.,](\d{1,9}))?)?)?"
+          r"\s*(Z|z|UTC|GMT|[+-]\d{2}(?::?\d{2})?)?$")
+
+Progress = Callable[[str, int, int], None]
+
+
+# =========================================================================== reports
+
+@dataclass
+class FileReport:
+    """Accounting of one input file (one batch)."""
+    path: str
+    kind: str
+    status: str = "ok"              # ok, refused, skipped
+    rows_read: int = 0
+    accepted: int = 0
+    quarantined: int = 0
+    duplicates: int = 0
+    message: str = ""
+    batch_id: str | None = None
+    content_sha256: str | None = None
+    rules: dict[str, int] = field(default_factory=dict)   # quarantine rule -> rows
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class IngestReport:
+    """Per-file accounting and totals of one ``ingest_files`` call."""
+    files: list[FileReport] = field(default_factory=list)
+    errors: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+    strict: bool = False
+
+    @property
+    def totals(self) -> dict[str, int]:
+        t = {k: sum(getattr(f, k) for f in self.files)
+             for k in ("rows_read", "accepted", "quarantined", "duplicates")}
+        for s in ("ok", "refused", "skipped"):
+            t["files_" + s] = sum(1 for f in self.files if f.status == s)
+        return t
+
+    @property
+    def exit_code(self) -> int:
+        """0 ok; 1 when a file was refused (or, with strict, a row was quarantined)."""
+        t = self.totals
+        if t["files_refused"] or (self.strict and t["quarantined"]):
+            return 1
+        return 0
+
+    def to_dict(self) -> dict:
+        return {"files": [f.to_dict() for f in self.files], "totals": self.totals,
+                "errors": list(self.errors), "notes": list(self.notes),
+                "exit_code": self.exit_code}
+
+
+# =========================================================================== mapping
+
+@dataclass
+class ColumnSpec:
+    source: str
+    unit: str | None = None
+
+
+@dataclass
+class Mapping:
+    """A column mapping file (TOML): [format], [columns], [maintenance]."""
+    columns: dict[str, ColumnSpec] = field(default_factory=dict)
+    delimiter: str | None = None
+    timezone: str | None = None
+    encoding: str | None = None
+    decimal: str = "."
+    ts_format: str | None = None
+    resets_wear: tuple[str, ...] | None = None
+    path: str | None = None
+
+
+_FORMAT_KEYS = ("delimiter", "timezone", "encoding", "decimal", "ts_format")
+
+
+def load_mapping(path: str | os.PathLike) -> Mapping:
+    """Read a mapping file. Raises InputError naming the file and the bad entry."""
+    p = Path(path)
+    where = str(p)
+    try:
+        with open(p, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(f"mapping file {where} not found",
+                         hint="Pass an existing TOML file with --mapping.") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"mapping file {where}: {exc}", hint="Fix the TOML syntax.") from None
+    except OSError as exc:
+        raise InputError(f"cannot read mapping file {where}: {exc}") from None
+    unknown = [k for k in data if k not in ("format", "columns", "maintenance")]
+    if unknown:
+        raise InputError(f"mapping file {where}: unknown section(s) {', '.join(unknown)}",
+                         hint="Sections are [format], [columns] and [maintenance].")
+    m = Mapping(path=where)
+    fmt = data.get("format", {})
+    bad = [k for k in fmt if k not in _FORMAT_KEYS]
+    if bad:
+        raise InputError(f"mapping file {where}: unknown [format] key(s) {', '.join(bad)}",
+                         hint="Known keys: " + ", ".join(_FORMAT_KEYS) + ".")
+    if "delimiter" in fmt:
+        d = str(fmt["delimiter"])
+        d = {"tab": "\t", "\\t": "\t", "comma": ",", "semicolon": ";", "pipe": "|"}.get(d, d)
+        if len(d) != 1:
+            raise InputError(f"mapping file {where}: delimiter {fmt['delimiter']!r} must be one "
+                             "character", hint='For example delimiter = ";" or "tab".')
+        m.delimiter = d
+    if "timezone" in fmt:
+        m.timezone = _check_tz(str(fmt["timezone"]), where)
+    if "encoding" in fmt:
+        try:
+            m.encoding = codecs.lookup(str(fmt["encoding"])).name
+        except LookupError:
+            raise InputError(f"mapping file {where}: unknown encoding {fmt['encoding']!r}",
+                             hint="Use utf-8, utf-8-sig or latin-1.") from None
+    if "decimal" in fmt:
+        if fmt["decimal"] not in (".", ","):
+            raise InputError(f"mapping file {where}: decimal must be '.' or ','")
+        m.decimal = fmt["decimal"]
+    if "ts_format" in fmt:
+        m.ts_format = str(fmt["ts_format"])
+    known = set(FIELDS["telemetry"]) | set(FIELDS["maintenance"])
+    for canon, spec in data.get("columns", {}).items():
+        if canon not in known:
+            raise InputError(f"mapping file {where}: [columns] key '{canon}' is not a canonical "
+                             "column", hint="Canonical columns: " + ", ".join(sorted(known)) + ".")
+        if isinstance(spec, str):
+            m.columns[canon] = ColumnSpec(spec)
+        elif isinstance(spec, dict) and isinstance(spec.get("column"), str):
+            extra = [k for k in spec if k not in ("column", "unit")]
+            if extra:
+                raise InputError(f"mapping file {where}: [columns] {canon} has unknown key(s) "
+                                 f"{', '.join(extra)}", hint='Use { column = "...", unit = "..." }.')
+            m.columns[canon] = ColumnSpec(spec["column"], spec.get("unit"))
+        else:
+            raise InputError(f"mapping file {where}: [columns] {canon} must be a column name or "
+                             '{ column = "...", unit = "..." }')
+    mt = data.get("maintenance", {})
+    if "resets_wear" in mt:
+        rw = mt["resets_wear"]
+        if not isinstance(rw, list) or not all(isinstance(x, str) for x in rw):
+            raise InputError(f"mapping file {where}: [maintenance] resets_wear must be a list of "
+                             "strings")
+        m.resets_wear = tuple(rw)
+    return m
+
+
+def _check_tz(name: str, where: str) -> str:
+    try:
+        ZoneInfo(name)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise InputError(f"{where}: unknown time zone {name!r}",
+                         hint="Use an IANA name such as Europe/Lisbon or UTC.") from None
+    return name
+
+
+# =========================================================================== discovery
+
+def discover_files(paths) -> tuple[list[Path], list[str]]:
+    """Expand files, folders (recursive) and globs; returns (files, paths that matched nothing)."""
+    if isinstance(paths, (str, os.PathLike)):
+        paths = [paths]
+    files: list[Path] = []
+    missing: list[str] = []
+    seen: set[str] = set()
+
+    def add(p: Path):
+        k = str(p.resolve())
+        if k not in seen:
+            seen.add(k)
+            files.append(p)
+
+    for raw in paths:
+        p = Path(raw).expanduser()
+        if p.is_dir():
+            found = sorted(q for q in p.rglob("*")
+                           if q.is_file() and q.name.lower().endswith(_WALK_SUFFIXES))
+            for q in found:
+                add(q)
+        elif p.is_file():
+            add(p)
+        elif any(ch in str(raw) for ch in "*?["):
+            hits = sorted(Path(h) for h in globmod.glob(str(p), recursive=True))
+            hits = [h for h in hits if h.is_file()]
+            if not hits:
+                missing.append(str(raw))
+            for h in hits:
+                add(h)
+        else:
+            missing.append(str(raw))
+    return files, missing
+
+
+# =========================================================================== sources
+
+class _Refuse(Exception):
+    """Stop this file: message and hint for the report."""
+
+    def __init__(self, message: str, hint: str = ""):
+        super().__init__(message)
+        self.message = message
+        self.hint = hint
+
+
+def _file_sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while True:
+            b = fh.read(1 << 22)
+            if not b:
+                break
+            h.update(b)
+    return h.hexdigest()
+
+
+def _detect_format(path: Path) -> str:
+    name = path.name.lower()
+    with open(path, "rb") as fh:
+        head = fh.read(4)
+    if head == b"PAR1":
+        return "parquet"
+    inner = name[:-3] if name.endswith(".gz") else name
+    if inner.endswith((".ndjson", ".jsonl")):
+        return "ndjson"
+    if inner.endswith((".parquet", ".pq")):
+        raise _Refuse(f"{path} does not look like a Parquet file (no PAR1 magic)",
+                      "Re-export the file as Parquet, CSV or NDJSON.")
+    if inner.endswith((".csv", ".tsv", ".txt")):
+        return "csv"
+    raise _Refuse(f"{path}: not a CSV, Parquet or NDJSON file",
+                  "Give CSV (.csv, .csv.gz), Parquet (.parquet) or NDJSON (.ndjson, .jsonl) "
+                  "files.")
+
+
+class _ByteStream:
+    """Raw or gzip-decompressed bytes, with the position in the file for progress."""
+
+    def __init__(self, path: Path):
+        self.raw = open(path, "rb")
+        magic = self.raw.read(2)
+        self.raw.seek(0)
+        self.stream = gzip.GzipFile(fileobj=self.raw, mode="rb") if magic == b"\x1f\x8b" \
+            else self.raw
+        self.total = os.fstat(self.raw.fileno()).st_size
+
+    def read(self, n: int) -> bytes:
+        parts, need = [], n
+        while need > 0:
+            b = self.stream.read(need)
+            if not b:
+                break
+            parts.append(b)
+            need -= len(b)
+        return b"".join(parts)
+
+    @property
+    def done(self) -> int:
+        return self.raw.tell()
+
+    def close(self):
+        try:
+            if self.stream is not self.raw:
+                self.stream.close()
+        finally:
+            self.raw.close()
+
+
+class _Source:
+    """Yields chunks: a frame of source columns plus ``_line`` (and ``_bad_json`` etc.)."""
+    fmt: str
+    columns: list[str]
+    notes: list[str]
+
+    def chunks(self) -> Iterator[pl.DataFrame]:
+        raise NotImplementedError
+
+    def close(self):
+        pass
+
+
+class _Decoder:
+    def __init__(self, encoding: str | None, path: Path):
+        self.explicit = encoding
+        self.mode = encoding or "utf-8"
+        self.path = path
+        self.switched_at: int | None = None
+
+    def __call__(self, b: bytes, line: int) -> bytes:
+        if self.mode in ("utf-8", "utf-8-sig"):
+            try:
+                b.decode("utf-8")
+                return b
+            except UnicodeDecodeError as exc:
+                if self.explicit:
+                    raise _Refuse(f"{self.path}: not valid {self.explicit} near line {line} "
+                                  f"({exc.reason})",
+                                  'Set [format] encoding = "latin-1" (or the file\'s encoding) '
+                                  "in the mapping file.") from None
+                self.mode = "latin-1"
+                self.switched_at = line
+        try:
+            return b.decode(self.mode).encode("utf-8")
+        except UnicodeDecodeError as exc:
+            raise _Refuse(f"{self.path}: not valid {self.mode} near line {line} ({exc.reason})",
+                          "Set [format] encoding in the mapping file.") from None
+
+
+def _sniff_delimiter(lines: list[str]) -> str:
+    best, best_score = ",", (-1.0, 0)
+    for d in _DELIMS:
+        try:
+            rows = list(csv.reader(lines[:50], delimiter=d))
+        except csv.Error:
+            continue
+        rows = [r for r in rows if r]
+        if not rows:
+            continue
+        n = len(rows[0])
+        if n < 2:
+            continue
+        body = rows[1:]
+        consistent = (sum(1 for r in body if len(r) == n) / len(body)) if body else 1.0
+        score = (consistent, n)
+        if score > best_score:
+            best, best_score = d, score
+    return best
+
+
+def _clean_header(names: list[str]) -> list[str]:
+    names = [n.strip() for n in names]
+    while names and names[-1] == "":
+        names.pop()          # a trailing delimiter on every line
+    out, seen = [], {}
+    for i, n in enumerate(names):
+        n = n or f"column_{i + 1}"
+        if n in seen:
+            seen[n] += 1
+            n = f"{n}_{seen[n]}"
+        else:
+            seen[n] = 1
+        out.append(n)
+    return out
+
+
+class _CsvSource(_Source):
+    fmt = "csv"
+
+    def __init__(self, path: Path, mapping: Mapping | None, chunk_rows: int):
+        self.path = path
+        self.notes = []
+        self.bs = _ByteStream(path)
+        try:
+            head = self.bs.read(1 << 20)
+        except (OSError, EOFError, zlib.error, gzip.BadGzipFile) as exc:
+            self.bs.close()
+            raise _Refuse(f"{path}: cannot read ({exc})", "Check that the file is complete.")
+        if head.startswith((b"\xff\xfe", b"\xfe\xff")):
+            self.bs.close()
+            raise _Refuse(f"{path}: UTF-16 text is not supported",
+                          "Save the file as UTF-8 (or latin-1) CSV.")
+        if b"\x00" in head:
+            self.bs.close()
+            raise _Refuse(f"{path}: looks binary (NUL bytes), not a CSV file",
+                          "Give CSV, Parquet or NDJSON files.")
+        if head.startswith(b"\xef\xbb\xbf"):
+            head = head[3:]
+        enc = mapping.encoding if mapping else None
+        if enc == "utf-8-sig":
+            enc = "utf-8"
+        self.decode = _Decoder(enc, path)
+        nl = head.find(b"\n")
+        header_b = head if nl < 0 else head[:nl]
+        self.carry = b"" if nl < 0 else head[nl + 1:]
+        sample_b = head[: max(head.rfind(b"\n"), 0)] or head
+        sample = self.decode(sample_b, 1).decode("utf-8", "replace")
+        lines = sample.splitlines()[:60]
+        if not lines or not lines[0].strip():
+            self.bs.close()
+            raise _Refuse(f"{path}: empty file or empty header line",
+                          "The first line must hold the column names.")
+        self.delimiter = (mapping.delimiter if mapping and mapping.delimiter
+                          else _sniff_delimiter(lines))
+        if not (mapping and mapping.delimiter):
+            self.notes.append("delimiter " + {"\t": "tab"}.get(self.delimiter,
+                                                               repr(self.delimiter)))
+        header_txt = self.decode(header_b, 1).decode("utf-8").rstrip("\r")
+        self.columns = _clean_header(next(csv.reader([header_txt], delimiter=self.delimiter)))
+        self.n_header_fields = len(self.columns)
+        avg = max(8.0, len(sample_b) / max(1, sample_b.count(b"\n") + 1))
+        self.block_bytes = int(max(1 << 12, min(chunk_rows * avg * 1.05, 1 << 30)))
+        self.next_line = 2
+
+    def _cut(self, buf: bytes) -> int | None:
+        q = b'"'
+        total = buf.count(q)
+        p = buf.rfind(b"\n")
+        tries = 0
+        while p >= 0 and tries < 64:
+            if (total - buf.count(q, p)) % 2 == 0:
+                return p + 1
+            p = buf.rfind(b"\n", 0, p)
+            tries += 1
+        return None
+
+    def _blocks(self) -> Iterator[bytes]:
+        target = self.block_bytes
+        carry, eof = self.carry, False
+        self.carry = b""
+        while True:
+            if not eof and len(carry) < target:
+                more = self.bs.read(target - len(carry))
+                if len(more) < target - len(carry):
+                    eof = True
+                carry = carry + more if carry else more
+            if eof:
+                if carry:
+                    yield carry
+                return
+            cut = self._cut(carry)
+            if cut is None:
+                if len(carry) < 8 * self.block_bytes:
+                    target = len(carry) * 2      # an open quote: read further
+                    continue
+                cut = carry.rfind(b"\n") + 1 or len(carry)   # give up on quote balance
+            block, carry = carry[:cut], carry[cut:]
+            target = self.block_bytes
+            yield block
+
+    def chunks(self) -> Iterator[pl.DataFrame]:
+        names = self.columns + [f"_extra_{i + 1}" for i in range(_N_EXTRA)]
+        schema = {n: pl.String for n in names}
+        first_line = self.next_line
+        try:
+            for block in self._blocks():
+                first_line = self.next_line
+                n_newlines = block.count(b"\n")
+                self.next_line += n_newlines
+                data = self.decode(block, first_line)
+                df = pl.read_csv(data, has_header=False, separator=self.delimiter,
+                                 quote_char='"', schema=schema, missing_columns="insert",
+                                 truncate_ragged_lines=True, empty_string_is_null=False,
+                                 raise_if_empty=False, infer_schema=False)
+                if df.height == 0:
+                    continue
+                physical = n_newlines + (0 if block.endswith(b"\n") else 1)
+                idx = pl.int_range(0, pl.len(), dtype=pl.Int64)
+                if physical == df.height:
+                    line = idx + first_line
+                else:  # quoted fields hold line breaks: count them per row
+                    nl = pl.sum_horizontal([pl.col(c).str.count_matches("\n", literal=True)
+                                            .fill_null(0) for c in names]).cast(pl.Int64)
+                    line = idx + first_line + (nl.cum_sum() - nl)
+                df = df.with_columns(_line=line)
+                # lines holding only blanks or delimiters are not rows
+                maybe = df[names[0]].fill_null("").str.strip_chars() == ""
+                if maybe.any():
+                    blank = pl.all_horizontal([pl.col(c).fill_null("").str.strip_chars() == ""
+                                               for c in names])
+                    df = df.filter(~blank)
+                extras = [f"_extra_{i + 1}" for i in range(_N_EXTRA)]
+                mal = df.select(pl.any_horizontal([pl.col(e).fill_null("") != ""
+                                                   for e in extras])).to_series()
+                if mal.any():  # fields past the header that hold more than blanks
+                    mal = df.select(pl.any_horizontal([
+                        pl.col(e).fill_null("").str.strip_chars() != "" for e in extras])
+                    ).to_series()
+                df = df.with_columns(mal.alias("_malformed"))
+                yield df
+        except (OSError, EOFError, zlib.error, gzip.BadGzipFile) as exc:
+            raise _Refuse(f"{self.path}: cannot read past line {self.next_line} ({exc})",
+                          "The file may be truncated; export it again.") from None
+        except pl.exceptions.PolarsError as exc:
+            last = max(first_line, self.next_line - 1)
+            where = f"line {first_line}" if last == first_line else \
+                f"lines {first_line}-{last}"
+            raise _Refuse(f"{self.path}: cannot parse CSV in {where}: "
+                          f"{str(exc).splitlines()[0]}",
+                          "Check the delimiter and quoting; set [format] delimiter.") from None
+        if self.decode.switched_at is not None:
+            self.notes.append(f"decoded as latin-1 from line {self.decode.switched_at}")
+
+    @property
+    def bytes_done(self) -> int:
+        return self.bs.done
+
+    @property
+    def bytes_total(self) -> int:
+        return self.bs.total
+
+    def close(self):
+        self.bs.close()
+
+
+class _NdjsonSource(_Source):
+    fmt = "ndjson"
+
+    def __init__(self, path: Path, mapping: Mapping | None, chunk_rows: int):
+        self.path = path
+        self.notes = []
+        self.bs = _ByteStream(path)
+        try:
+            head = self.bs.read(1 << 20)
+        except (OSError, EOFError, zlib.error, gzip.BadGzipFile) as exc:
+            self.bs.close()
+            raise _Refuse(f"{path}: cannot read ({exc})")
+        if head.startswith(b"\xef\xbb\xbf"):
+            head = head[3:]
+        self.carry = head
+        enc = mapping.encoding if mapping else None
+        self.decode = _Decoder(None if enc in (None, "utf-8-sig") else enc, path)
+        keys: dict[str, None] = {}
+        text = self.decode(head[: max(head.rfind(b"\n"), 0)] or head, 1).decode("utf-8")
+        lines = text.splitlines()
+        for ln in lines[:1000]:
+            try:
+                obj = json.loads(ln)
+            except ValueError:
+                continue
+            if isinstance(obj, dict):
+                for k in obj:
+                    keys.setdefault(str(k), None)
+        if not keys:
+            self.bs.close()
+            raise _Refuse(f"{path}: no JSON objects found in the first lines",
+                          "NDJSON needs one JSON object per line.")
+        self.columns = list(keys)
+        avg = max(8.0, len(text) / max(1, len(lines)))
+        self.block_bytes = int(max(1 << 12, min(chunk_rows * avg * 1.05, 1 << 30)))
+        self.next_line = 1
+
+    def chunks(self) -> Iterator[pl.DataFrame]:
+        carry, eof = self.carry, False
+        try:
+            while True:
+                if not eof and len(carry) < self.block_bytes:
+                    more = self.bs.read(self.block_bytes - len(carry))
+                    if len(more) < self.block_bytes - len(carry):
+                        eof = True
+                    carry += more
+                if eof:
+                    block, carry = carry, b""
+                else:
+                    cut = carry.rfind(b"\n") + 1
+                    if cut == 0:
+                        self.block_bytes *= 2
+                        continue
+                    block, carry = carry[:cut], carry[cut:]
+                if block:
+                    first = self.next_line
+                    self.next_line += block.count(b"\n")
+                    text = self.decode(block, first).decode("utf-8")
+                    lines = text.split("\n")
+                    if text.endswith("\n"):
+                        lines.pop()
+                    df = pl.DataFrame({"_json": pl.Series(lines, dtype=pl.String)})
+                    df = df.with_columns(
+                        _line=pl.int_range(0, pl.len(), dtype=pl.Int64) + first,
+                        _json=pl.col("_json").str.strip_chars())
+                    df = df.filter(pl.col("_json") != "")
+                    root = pl.col("_json").str.json_path_match("$")
+                    df = df.with_columns(
+                        _malformed=root.is_null() | ~pl.col("_json").str.starts_with("{"))
+                    cols = [pl.col("_json").str.json_path_match(_json_path(c)).alias(c)
+                            for c in self.columns]
+                    yield df.with_columns(cols)
+                if eof and not carry:
+                    return
+        except (OSError, EOFError, zlib.error, gzip.BadGzipFile) as exc:
+            raise _Refuse(f"{self.path}: cannot read past line {self.next_line} ({exc})",
+                          "The file may be truncated; export it again.") from None
+
+    @property
+    def bytes_done(self) -> int:
+        return self.bs.done
+
+    @property
+    def bytes_total(self) -> int:
+        return self.bs.total
+
+    def close(self):
+        self.bs.close()
+
+
+def _json_path(key: str) -> str:
+    if key.isidentifier():
+        return f"$.{key}"
+    return "$['" + key.replace("\\", "\\\\").replace("'", "\\'") + "']"
+
+
+class _ParquetSource(_Source):
+    fmt = "parquet"
+
+    def __init__(self, path: Path, mapping: Mapping | None, chunk_rows: int):
+        self.path = path
+        self.notes = []
+        self.chunk_rows = chunk_rows
+        try:
+            self.pf = pq.ParquetFile(path)
+        except (pa.ArrowException, OSError) as exc:
+            raise _Refuse(f"{path}: not a readable Parquet file ({exc})",
+                          "Re-export the file as Parquet, CSV or NDJSON.") from None
+        self.columns = list(self.pf.schema_arrow.names)
+        self.total_rows = self.pf.metadata.num_rows
+        self.done_rows = 0
+        self.size = path.stat().st_size
+
+    def chunks(self) -> Iterator[pl.DataFrame]:
+        offset = 1
+        try:
+            for batch in self.pf.iter_batches(batch_size=self.chunk_rows):
+                df = pl.from_arrow(pa.Table.from_batches([batch]))
+                if isinstance(df, pl.Series):
+                    df = df.to_frame()
+                n = df.height
+                df = df.with_columns(_line=pl.int_range(0, pl.len(), dtype=pl.Int64) + offset,
+                                     _malformed=pl.lit(False))
+                offset += n
+                self.done_rows += n
+                yield df
+        except (pa.ArrowException, OSError) as exc:
+            raise _Refuse(f"{self.path}: cannot read Parquet data after row {offset - 1} "
+                          f"({exc})", "The file may be damaged; export it again.") from None
+
+    @property
+    def bytes_done(self) -> int:
+        return int(self.size * self.done_rows / max(1, self.total_rows))
+
+    @property
+    def bytes_total(self) -> int:
+        return self.size
+
+    def close(self):
+        try:
+            self.pf.close()
+        except Exception:  # pragma: no cover - older pyarrow has no close()
+            pass
+
+
+def _open_source(path: Path, mapping: Mapping | None, chunk_rows: int) -> _Source:
+    fmt = _detect_format(path)
+    if fmt == "parquet":
+        return _ParquetSource(path, mapping, chunk_rows)
+    if fmt == "ndjson":
+        return _NdjsonSource(path, mapping, chunk_rows)
+    return _CsvSource(path, mapping, chunk_rows)
+
+
+# =========================================================================== validation
+
+@dataclass
+class _Plan:
+    """How canonical columns come from source columns for one file."""
+    kind: str
+    sources: dict[str, str]             # canonical -> source column
+    factors: dict[str, tuple[float, float]]
+    tz: str
+    decimal: str
+    ts_format: str | None
+    resets_wear: tuple[str, ...]
+    source_columns: list[str]
+
+
+def _find(columns: list[str], name: str) -> str | None:
+    if name in columns:
+        return name
+    folded = [c for c in columns if c.strip().casefold() == name.strip().casefold()]
+    return folded[0] if len(folded) == 1 else None
+
+
+def _make_plan(kind: str, src: _Source, mapping: Mapping | None, settings, path: Path) -> _Plan:
+    cols = src.columns
+    listing = ", ".join(cols) if len(cols) <= 40 else ", ".join(cols[:40]) + ", ..."
+    sources: dict[str, str] = {}
+    factors: dict[str, tuple[float, float]] = {}
+    for canon in FIELDS[kind]:
+        spec = mapping.columns.get(canon) if mapping else None
+        if spec is not None:
+            found = _find(cols, spec.source)
+            if found is None:
+                raise _Refuse(f"column '{spec.source}' (mapped to {canon}) not found in {path}; "
+                              f"columns are: {listing}",
+                              f"Fix [columns] {canon} in the mapping file {mapping.path}.")
+            sources[canon] = found
+            if canon in COLUMN_QUANTITY:
+                q = COLUMN_QUANTITY[canon]
+                try:
+                    factors[canon] = unit_factor(spec.unit, q) if spec.unit else (1.0, 0.0)
+                except InputError as exc:
+                    raise _Refuse(f"{path}: [columns] {canon}: {exc.message}",
+                                  exc.hint or "") from None
+        else:
+            found = _find(cols, canon)
+            if found is not None and not (mapping and found in
+                                          {s.source for s in mapping.columns.values()}):
+                sources[canon] = found
+                factors[canon] = (1.0, 0.0)
+    if kind == "telemetry":
+        required = ["unit_id", "ts", "n_in", "n_out", "ratio_cmd"]
+        if "p_in" not in sources:
+            required += ["v_in", "i_in"]
+    else:
+        required = ["unit_id", "ts", "action"]
+    missing = [c for c in required if c not in sources]
+    if missing:
+        need = ", ".join(missing)
+        extra = (" (or p_in instead of v_in and i_in)"
+                 if kind == "telemetry" and {"v_in", "i_in"} & set(missing) else "")
+        raise _Refuse(f"{path}: no column for {need}{extra}; columns are: {listing}",
+                      "Map them in [columns] of a mapping file (--mapping), e.g. "
+                      f'{missing[0]} = "<source column>".')
+    tz = (mapping.timezone if mapping and mapping.timezone else settings.plant_timezone)
+    try:
+        ZoneInfo(tz)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise _Refuse(f"unknown time zone {tz!r} (plant_timezone or [format] timezone)",
+                      "Use an IANA name such as Europe/Lisbon.") from None
+    rw = (mapping.resets_wear if mapping and mapping.resets_wear is not None
+          else DEFAULT_RESETS_WEAR)
+    return _Plan(kind, sources, factors, tz, mapping.decimal if mapping else ".",
+                 mapping.ts_format if mapping else None, rw, cols)
+
+
+def _num(name: str, dtype, decimal: str) -> tuple[pl.Expr, pl.Expr]:
+    """(value as Float64, value present) for a source column of any type."""
+    c = pl.col(name)
+    if dtype == pl.String:
+        s = c.str.strip_chars()
+        if decimal == ",":
+            s = s.str.replace(",", ".", literal=True)
+        return s.cast(pl.Float64, strict=False), s.is_not_null() & (s != "")
+    if dtype.is_numeric() or dtype == pl.Boolean:
+        return c.cast(pl.Float64, strict=False), c.is_not_null()
+    s = c.cast(pl.String, strict=False).str.strip_chars()
+    return s.cast(pl.Float64, strict=False), s.is_not_null() & (s != "")
+
+
+_FAST_AWARE = ("%Y-%m-%dT%H:%M:%S%.f%#z", "%Y-%m-%d %H:%M:%S%.f%#z")
+_FAST_NAIVE = ("%Y-%m-%dT%H:%M:%S%.f", "%Y-%m-%d %H:%M:%S%.f")
+
+
+def _nulls(n: int, dtype) -> pl.Series:
+    return pl.Series("", [], dtype=dtype).extend_constant(None, n)
+
+
+def _parse_number(df: pl.DataFrame, name: str, decimal: str) -> tuple[pl.Series, pl.Series]:
+    """(Float64 values, present) of a source column. Text is cast directly; only a column
+    with values that fail (surrounding blanks, decimal commas) pays for the slow path."""
+    col = df[name]
+    if col.dtype.is_numeric() or col.dtype == pl.Boolean:
+        return col.cast(pl.Float64, strict=False), col.is_not_null()
+    s = col.cast(pl.String, strict=False)
+    if decimal == ",":
+        s = s.str.replace(",", ".", literal=True)
+    v = s.cast(pl.Float64, strict=False)
+    present = s.is_not_null() & (s != "")
+    retry = present & v.is_null()
+    if retry.any():
+        pos = retry.arg_true()
+        sub = s.gather(pos).str.strip_chars()
+        v = v.scatter(pos, sub.cast(pl.Float64, strict=False))
+        empty = sub == ""
+        if empty.any():
+            present = present.scatter(pos.filter(empty), False)
+    return v, present
+
+
+def _parse_ts_regex(s: pl.Series) -> tuple[pl.Series, pl.Series]:
+    """(aware UTC, naive) for ISO-like strings the fast formats did not take: single-digit
+    fields, '/' separators, minutes without seconds, dates alone, 'UTC'/'GMT' suffixes."""
+    d = pl.DataFrame({"s": s.str.strip_chars()}).with_columns(
+        g=pl.col("s").str.extract_groups(_TS_RE))
+    f = [pl.col("g").struct.field(str(i)) for i in range(1, 9)]
+    norm = pl.concat_str([f[0], pl.lit("-"), f[1].str.zfill(2), pl.lit("-"), f[2].str.zfill(2),
+                          pl.lit(" "), f[3].fill_null("0").str.zfill(2), pl.lit(":"),
+                          f[4].fill_null("00"), pl.lit(":"), f[5].fill_null("00"), pl.lit("."),
+                          f[6].fill_null("0")])
+    off = f[7]
+    sign = pl.when(off.str.starts_with("-")).then(-1).otherwise(1)
+    digits = off.str.replace_all(r"[^0-9]", "")
+    off_min = pl.when(off.is_in(["Z", "z", "UTC", "GMT"])).then(0).otherwise(
+        sign * (digits.str.slice(0, 2).cast(pl.Int64, strict=False) * 60
+                + digits.str.slice(2, 2).cast(pl.Int64, strict=False).fill_null(0)))
+    d = d.with_columns(naive=norm.str.to_datetime("%Y-%m-%d %H:%M:%S%.f", strict=False,
+                                                  time_unit="us"),
+                       has_off=off.is_not_null(), off_min=off_min)
+    d = d.with_columns(
+        aware=pl.when(pl.col("has_off")).then(
+            pl.col("naive").dt.replace_time_zone("UTC") - pl.duration(minutes=pl.col("off_min"))),
+        naive=pl.when(pl.col("has_off")).then(None).otherwise(pl.col("naive")))
+    return d["aware"].cast(pl.Datetime("us", "UTC")), d["naive"].cast(pl.Datetime("us"))
+
+
+def _timestamp(df: pl.DataFrame, name: str, plan: _Plan) -> pl.DataFrame:
+    """Add __ts (UTC), __ts_present and __ts_rule (null, bad_timestamp,
+    nonexistent_local_time or ambiguous_local_time) for the source column ``name``.
+
+    Timestamps with an offset (or Z) are exact instants. Naive ones are read in the
+    mapping's / plant's time zone: a local time skipped by a DST change is
+    nonexistent_local_time, one that happens twice is ambiguous_local_time.
+    """
+    col = df[name]
+    dtype = col.dtype
+    utc = pl.Datetime("us", "UTC")
+    n = df.height
+    fmt = plan.ts_format
+    if isinstance(dtype, pl.Datetime) and dtype.time_zone:
+        aware = col.dt.convert_time_zone("UTC").cast(utc)
+        naive = _nulls(n, pl.Datetime("us"))
+        present = col.is_not_null()
+    elif isinstance(dtype, (pl.Datetime, pl.Date)):
+        aware = _nulls(n, utc)
+        naive = col.cast(pl.Datetime("us"))
+        present = col.is_not_null()
+    elif fmt in ("epoch_s", "epoch_ms"):
+        v, pr = _num(name, dtype, plan.decimal)
+        tmp = df.select(v.alias("v"), pr.alias("p"))
+        mult, lim = (1_000_000, 1e11) if fmt == "epoch_s" else (1_000, 1e14)
+        ok = tmp["v"].is_finite() & (tmp["v"].abs() < lim)
+        aware = tmp.select(pl.when(ok).then((pl.col("v") * mult).round(0).cast(pl.Int64))
+                           .cast(pl.Datetime("us")).dt.replace_time_zone("UTC"))[:, 0]
+        naive = _nulls(n, pl.Datetime("us"))
+        present = tmp["p"]
+    else:
+        s = col.cast(pl.String, strict=False)
+        present = s.is_not_null() & (s != "")
+        if fmt and ("%z" in fmt or "%Z" in fmt or "%:z" in fmt):
+            aware = s.str.strip_chars().str.to_datetime(fmt, strict=False, time_unit="us",
+                                                        time_zone="UTC")
+            naive = _nulls(n, pl.Datetime("us"))
+        elif fmt:
+            aware = _nulls(n, utc)
+            naive = s.str.strip_chars().str.to_datetime(fmt, strict=False, time_unit="us")
+        else:
+            aware = s.str.to_datetime(_FAST_AWARE[0], strict=False, time_unit="us",
+                                      time_zone="UTC")
+            naive = _nulls(n, pl.Datetime("us"))
+            left = aware.is_null() & present
+            if left.any():
+                naive = s.str.to_datetime(_FAST_NAIVE[0], strict=False, time_unit="us")
+                left = left & naive.is_null()
+            for fa, fn in zip(_FAST_AWARE[1:], _FAST_NAIVE[1:]):
+                if not left.any():
+                    break
+                pos = left.arg_true()
+                sub = s.gather(pos)
+                aware = aware.scatter(pos, sub.str.to_datetime(fa, strict=False, time_unit="us",
+                                                               time_zone="UTC"))
+                naive = naive.scatter(pos, sub.str.to_datetime(fn, strict=False,
+                                                               time_unit="us"))
+                left = left & aware.is_null() & naive.is_null()
+            if left.any():
+                pos = left.arg_true()
+                sub = s.gather(pos)
+                a2, n2 = _parse_ts_regex(sub)
+                aware = aware.scatter(pos, a2)
+                naive = naive.scatter(pos, n2)
+                blank = sub.str.strip_chars() == ""
+                if blank.any():
+                    present = present.scatter(pos.filter(blank), False)
+    d = pl.DataFrame({"aware": aware, "naive": naive, "present": present})
+    need_local = d.select((pl.col("aware").is_null() & pl.col("naive").is_not_null()).any()).item()
+    if need_local and plan.tz != "UTC":
+        nv = pl.col("naive")
+        d = d.with_columns(
+            strict=nv.dt.replace_time_zone(plan.tz, ambiguous="null", non_existent="null"),
+            early=nv.dt.replace_time_zone(plan.tz, ambiguous="earliest", non_existent="null"))
+        d = d.with_columns(
+            local=pl.col("strict").dt.convert_time_zone("UTC"),
+            ne=nv.is_not_null() & pl.col("early").is_null(),
+            amb=nv.is_not_null() & pl.col("early").is_not_null() & pl.col("strict").is_null())
+    elif need_local:
+        d = d.with_columns(local=pl.col("naive").dt.replace_time_zone("UTC"),
+                           ne=pl.lit(False), amb=pl.lit(False))
+    else:
+        d = d.with_columns(local=pl.lit(None, utc), ne=pl.lit(False), amb=pl.lit(False))
+    d = d.with_columns(ts=pl.coalesce(pl.col("aware"), pl.col("local").cast(utc)))
+    p, aw = pl.col("present"), pl.col("aware").is_not_null()
+    rule = (pl.when(~p | pl.col("ts").is_not_null()).then(pl.lit(None, pl.String))
+            .when(~aw & pl.col("ne")).then(pl.lit("nonexistent_local_time"))
+            .when(~aw & pl.col("amb")).then(pl.lit("ambiguous_local_time"))
+            .otherwise(pl.lit("bad_timestamp")))
+    d = d.select(pl.col("ts").alias("__ts"), p.alias("__ts_present"), rule.alias("__ts_rule"))
+    return df.with_columns(d.get_columns())
+
+
+def _fmt(x: pl.Expr) -> pl.Expr:
+    return x.cast(pl.String).fill_null("")
+
+
+def _validate(df: pl.DataFrame, plan: _Plan, settings,
+              fmt: str) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Parse and check one chunk: (good rows: _line and __<canonical> columns; bad rows:
+    _line, _rule, _col, _msg, _raw).
+
+    Canonical values land in ``__<name>`` columns. Each check is materialised as a boolean
+    column first and the first failing check (in column order) names the rule, so the
+    expression graph stays small and every row costs a few vector operations.
+    """
+    kind, S = plan.kind, plan.sources
+    checks: list[tuple[pl.Expr, str, str | None, pl.Expr]] = []
+    uid_src, ts_src = S["unit_id"], S["ts"]
+
+    df = df.with_columns(__unit_id=pl.col(uid_src).cast(pl.String, strict=False)
+                         .str.strip_chars())
+    df = _timestamp(df, ts_src, plan)
+    checks.append((pl.col("_malformed"), "malformed_row", None,
+                   pl.lit("the row has more fields than the header (or is not a JSON object)")))
+    uid = pl.col("__unit_id")
+    checks.append((uid.is_null() | (uid == ""), "empty_unit_id", uid_src,
+                   pl.lit(f"unit_id ({uid_src}) is empty")))
+    raw_ts = _fmt(pl.col(ts_src))
+    checks.append((~pl.col("__ts_present"), "missing_value", ts_src,
+                   pl.lit(f"ts ({ts_src}) is empty")))
+    for rule, text in (("bad_timestamp", "is not a timestamp (expected ISO 8601 such as "
+                        "2024-03-31T02:30:00+01:00)"),
+                       ("nonexistent_local_time", f"does not exist in {plan.tz} (clocks went "
+                        "forward); log with a UTC offset"),
+                       ("ambiguous_local_time", f"happened twice in {plan.tz} (clocks went "
+                        "back); log with a UTC offset")):
+        checks.append((pl.col("__ts_rule") == rule, rule, ts_src,
+                       pl.concat_str([pl.lit(f"ts ({ts_src}) '"), raw_ts, pl.lit(f"' {text}")])))
+
+    if kind == "telemetry":
+        bounds = {
+            "v_in": (-settings.v_max_v, settings.v_max_v, "V"),
+            "i_in": (-settings.i_max_a, settings.i_max_a, "A"),
+            "p_in": (-settings.p_max_w, settings.p_max_w, "W"),
+            "n_in": (0.0, settings.n_max_rpm, "rpm"),
+            "n_out": (0.0, settings.n_max_rpm, "rpm"),
+            "ratio_cmd": (settings.ratio_min, settings.ratio_max, "-"),
+            "t_out": (-settings.t_out_max_nm, settings.t_out_max_nm, "N*m"),
+            "temp": (settings.temp_min_c, settings.temp_max_c, "degC"),
+        }
+        required = {"n_in", "n_out", "ratio_cmd"}
+        if "p_in" not in S:
+            required |= {"v_in", "i_in"}
+        parsed = []
+        for canon in NUMERIC:
+            if canon not in S:
+                parsed += [_nulls(df.height, pl.Float64).alias(_C + canon),
+                           _nulls(df.height, pl.Boolean).fill_null(False)
+                           .alias(f"{_C}{canon}_present")]
+                continue
+            src = S[canon]
+            v, present = _parse_number(df, src, plan.decimal)
+            scale, offset = plan.factors.get(canon, (1.0, 0.0))
+            if (scale, offset) != (1.0, 0.0):
+                v = v * scale + offset
+            parsed += [v.alias(_C + canon), present.alias(f"{_C}{canon}_present")]
+        df = df.with_columns(parsed)
+        p = pl.col("__p_in")
+        df = df.with_columns(__p_in_parsed=p)
+        if "v_in" in S and "i_in" in S:
+            vi = pl.col("__v_in") * pl.col("__i_in")
+            df = df.with_columns(__p_in=pl.coalesce(p, vi) if "p_in" in S else vi)
+        for canon in NUMERIC:
+            if canon not in S:
+                continue
+            src = S[canon]
+            v, present = pl.col(_C + canon), pl.col(f"{_C}{canon}_present")
+            raw = _fmt(pl.col(src))
+            lo, hi, unit = bounds[canon]
+            if canon in required:
+                checks.append((~present, "missing_value", src,
+                               pl.lit(f"{canon} ({src}) is empty")))
+            if canon == "p_in":
+                checks.append((present & pl.col("__p_in_parsed").is_null(),
+                               "not_numeric", src,
+                               pl.concat_str([pl.lit(f"p_in ({src}) '"), raw,
+                                              pl.lit("' is not a number")])))
+                checks.append((v.is_null(), "missing_value", src,
+                               pl.lit(f"p_in ({src}) is empty and v_in*i_in is not available")))
+            else:
+                checks.append((present & v.is_null(), "not_numeric", src,
+                               pl.concat_str([pl.lit(f"{canon} ({src}) '"), raw,
+                                              pl.lit("' is not a number")])))
+            checks.append((v.is_not_null() & ~v.is_finite(), "not_finite", src,
+                           pl.concat_str([pl.lit(f"{canon} ({src}) '"), raw,
+                                          pl.lit("' is not a finite number")])))
+            if canon in ("n_in", "n_out"):
+                what = f"must be >= 0 and <= {hi:g} rpm (n_max_rpm)"
+            elif canon == "ratio_cmd":
+                what = f"is outside [{lo:g}, {hi:g}] (ratio_min, ratio_max)"
+            elif canon == "temp":
+                what = f"is outside [{lo:g}, {hi:g}] degC (temp_min_c, temp_max_c)"
+            else:
+                what = f"exceeds +/-{hi:g} {unit} (bounds in settings)"
+            checks.append((v.is_finite() & ((v < lo) | (v > hi)), "out_of_range", src,
+                           pl.concat_str([pl.lit(f"{canon} ({src}) = "),
+                                          v.round(6).cast(pl.String),
+                                          pl.lit((f" {unit} " if unit != "-" else " ") + what)])))
+        if "p_in" not in S:
+            v = pl.col("__p_in")
+            checks.append((v.is_finite() & (v.abs() > settings.p_max_w), "out_of_range",
+                           S["v_in"], pl.concat_str([pl.lit("p_in = v_in*i_in = "),
+                                                     v.round(3).cast(pl.String),
+                                                     pl.lit(f" W exceeds +/-{settings.p_max_w:g}"
+                                                            " W (p_max_w)")])))
+            checks.append((v.is_not_null() & ~v.is_finite(), "not_finite", S["v_in"],
+                           pl.lit("p_in = v_in*i_in is not a finite number")))
+    else:
+        a_src = S["action"]
+        df = df.with_columns(__action=pl.col(a_src).cast(pl.String, strict=False)
+                             .str.strip_chars())
+        action = pl.col("__action")
+        checks.append((action.is_null() | (action == ""), "missing_value", a_src,
+                       pl.lit(f"action ({a_src}) is empty")))
+        if "note" in S:
+            note = pl.col(S["note"]).cast(pl.String, strict=False).str.strip_chars()
+            df = df.with_columns(__note=pl.when(note == "").then(None).otherwise(note))
+        else:
+            df = df.with_columns(__note=pl.lit(None, pl.String))
+        phrases = [x.lower() for x in plan.resets_wear if x.strip()]
+        by_phrase = (action.fill_null("").str.contains_any(phrases, ascii_case_insensitive=True)
+                     if phrases else pl.lit(False))
+        if "resets_wear" in S:
+            rsrc = S["resets_wear"]
+            r = pl.col(rsrc).cast(pl.String, strict=False).str.strip_chars().str.to_lowercase()
+            flag = (pl.when(r.is_in(["true", "yes", "y", "1", "t"])).then(True)
+                    .when(r.is_in(["false", "no", "n", "0", "f"])).then(False)
+                    .otherwise(None))
+            df = df.with_columns(__rw_flag=flag, __rw_raw=r)
+            checks.append((pl.col("__rw_raw").is_not_null() & (pl.col("__rw_raw") != "")
+                           & pl.col("__rw_flag").is_null(), "not_boolean", rsrc,
+                           pl.concat_str([pl.lit(f"resets_wear ({rsrc}) '"), _fmt(pl.col(rsrc)),
+                                          pl.lit("' is not true/false")])))
+            df = df.with_columns(__resets_wear=pl.col("__rw_flag").fill_null(False) | by_phrase)
+        else:
+            df = df.with_columns(__resets_wear=by_phrase)
+
+    df = df.with_columns([flag.fill_null(False).alias(f"_f{i}")
+                          for i, (flag, _, _, _) in enumerate(checks)])
+    fcols = [f"_f{i}" for i in range(len(checks))]
+    rule = pl.lit(None, pl.String)
+    for i in reversed(range(len(checks))):
+        rule = pl.when(pl.col(fcols[i])).then(pl.lit(checks[i][1])).otherwise(rule)
+    df = df.with_columns(_rule=rule)
+    canon = [_C + c for c in FIELDS[kind] if _C + c in df.columns]
+    good = df.select(["_line", "_rule"] + canon).filter(pl.col("_rule").is_null()).drop("_rule")
+    bad = df.filter(pl.col("_rule").is_not_null())
+    col = pl.lit(None, pl.String)
+    msg = pl.lit(None, pl.String)
+    for i in reversed(range(len(checks))):
+        _, _, c, m = checks[i]
+        col = pl.when(pl.col(fcols[i])).then(pl.lit(c, pl.String)).otherwise(col)
+        msg = pl.when(pl.col(fcols[i])).then(m).otherwise(msg)
+    bad = bad.select("_line", "_rule", col.alias("_col"), msg.alias("_msg"),
+                     _raw_json(plan, fmt).alias("_raw"))
+    return good, bad
+
+
+def _raw_json(plan: _Plan, fmt: str) -> pl.Expr:
+    if fmt == "ndjson":
+        return pl.col("_json")
+    cols = [pl.col(c).cast(pl.String, strict=False) for c in plan.source_columns]
+    plain = pl.struct(cols).struct.json_encode()
+    if fmt != "csv":
+        return plain
+    extra = [pl.col(f"_extra_{i + 1}") for i in range(_N_EXTRA)]
+    return pl.when(pl.col("_malformed")).then(pl.struct(cols + extra).struct.json_encode()) \
+        .otherwise(plain)
+
+
+# =========================================================================== dedupe
+
+def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
+    """Rows already in the lake with the same key as ``cand``: _line, _lake_batch and the
+    lake's values (``_lake_<col>``).
+
+    Bounded: only Delta files whose min/max statistics overlap the chunk's keys are opened,
+    key columns are streamed batch by batch and semi-joined with the chunk, and values are
+    read only for the keys that matched.
+    """
+    key, vals = list(KEYS[kind]), list(VALUES[kind])
+    empty = pl.DataFrame(schema={"_line": pl.Int64, "_lake_batch": pl.String,
+                                 **{f"_lake_{v}": cand.schema[_C + v] for v in vals}})
+    if cand.height == 0:
+        return empty
+    keys = cand.select([pl.col("_line")] + [pl.col(_C + k).alias(k) for k in key])
+    tmin, tmax = keys["ts"].min(), keys["ts"].max()
+    umin, umax = keys["unit_id"].min(), keys["unit_id"].max()
+    prune = (f"ts >= '{_iso(tmin)}' AND ts <= '{_iso(tmax)}' AND unit_id >= {_sql_str(umin)} "
+             f"AND unit_id <= {_sql_str(umax)}")
+    ds = lake.raw_dataset(kind, file_pruning_predicate=prune)
+    if ds is None or not ds.files:
+        return empty
+    units = pa.array(keys["unit_id"].unique().to_list(), pa.string())
+    flt = ((pds.field("ts") >= pa.scalar(tmin, pa.timestamp("us", "UTC")))
+           & (pds.field("ts") <= pa.scalar(tmax, pa.timestamp("us", "UTC")))
+           & pds.field("unit_id").isin(units))
+    hits = []
+    for batch in ds.to_batches(columns=key, filter=flt, batch_size=1 << 18):
+        if batch.num_rows:
+            lk = pl.from_arrow(pa.Table.from_batches([batch])).cast(
+                {k: keys.schema[k] for k in key}, strict=False)
+            h = keys.join(lk, on=key, how="semi")
+            if h.height:
+                hits.append(h)
+    if not hits:
+        return empty
+    hit = pl.concat(hits).unique("_line")
+    flt2 = ((pds.field("ts") >= pa.scalar(hit["ts"].min(), pa.timestamp("us", "UTC")))
+            & (pds.field("ts") <= pa.scalar(hit["ts"].max(), pa.timestamp("us", "UTC")))
+            & pds.field("unit_id").isin(pa.array(hit["unit_id"].unique().to_list(),
+                                                 pa.string())))
+    found = []
+    for batch in ds.to_batches(columns=key + vals + ["batch_id"], filter=flt2,
+                               batch_size=1 << 18):
+        if batch.num_rows:
+            lk = pl.from_arrow(pa.Table.from_batches([batch])).cast(
+                {k: keys.schema[k] for k in key}, strict=False)
+            found.append(hit.join(lk, on=key, how="inner"))
+    if not found:
+        return empty
+    got = pl.concat(found).unique("_line", keep="first").select(
+        ["_line", pl.col("batch_id").alias("_lake_batch")]
+        + [pl.col(v).alias(f"_lake_{v}") for v in vals])
+    return got.cast({c: t for c, t in empty.schema.items()}, strict=False)
+
+
+def _iso(t: datetime) -> str:
+    return t.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def _sql_str(v: str) -> str:
+    return "'" + str(v).replace("'", "''") + "'"
+
+
+def _split(good: pl.DataFrame, bad: pl.DataFrame, plan: _Plan, lake: Lake,
+           chunk: pl.DataFrame, fmt: str) -> tuple[pl.DataFrame, pl.DataFrame, int]:
+    """Dedupe the good rows: (accepted rows, quarantined rows, duplicate count).
+
+    Within the chunk the first row of a key wins; a later row with identical values is a
+    duplicate, with other values a conflicting_duplicate. Then the same against the lake
+    (earlier batches and earlier chunks of this batch).
+    """
+    kind = plan.kind
+    key, vals = [_C + k for k in KEYS[kind]], [_C + v for v in VALUES[kind]]
+    if good.height == 0:
+        return good, bad, 0
+    dups = 0
+    conflicts: list[pl.DataFrame] = []
+    first = good.select(pl.struct(key).is_first_distinct()).to_series()
+    if not first.all():
+        later = good.filter(~first)
+        cand = good.filter(first)
+        ref = cand.select(key + [pl.col(v).alias(v + "_ref") for v in vals]
+                          + [pl.col("_line").alias("_first_line")])
+        later = later.join(ref, on=key, how="left")
+        same = pl.all_horizontal([pl.col(v).eq_missing(pl.col(v + "_ref")) for v in vals])
+        later = later.with_columns(_same=same)
+        dups += int(later["_same"].sum())
+        conflicts.append(later.filter(~pl.col("_same")).select(
+            "_line", pl.lit("conflicting_duplicate").alias("_rule"),
+            pl.lit(None, pl.String).alias("_col"),
+            pl.concat_str([pl.lit("same " + ", ".join(KEYS[kind]) + " as line "),
+                           pl.col("_first_line").cast(pl.String),
+                           pl.lit(" of this file, with different values")]).alias("_msg")))
+    else:
+        cand = good
+    m = _lake_matches(lake, kind, cand)
+    if m.height:
+        cand = cand.join(m, on="_line", how="left")
+        same_lake = pl.all_horizontal([pl.col(_C + v).eq_missing(pl.col(f"_lake_{v}"))
+                                       for v in VALUES[kind]])
+        cand = cand.with_columns(_in_lake=pl.col("_lake_batch").is_not_null(),
+                                 _same_lake=same_lake)
+        dups += int(cand.filter(pl.col("_in_lake") & pl.col("_same_lake")).height)
+        conflicts.append(cand.filter(pl.col("_in_lake") & ~pl.col("_same_lake")).select(
+            "_line", pl.lit("conflicting_duplicate").alias("_rule"),
+            pl.lit(None, pl.String).alias("_col"),
+            pl.concat_str([pl.lit("same " + ", ".join(KEYS[kind]) + " already in the lake "
+                                  "(batch "), pl.col("_lake_batch"),
+                           pl.lit(") with different values; the lake is not overwritten")]
+                          ).alias("_msg")))
+        cand = cand.filter(~pl.col("_in_lake"))
+    conflicts = [c for c in conflicts if c.height]
+    if conflicts:
+        conf = pl.concat(conflicts)
+        raw = chunk.filter(pl.col("_line").is_in(conf["_line"].implode())).select(
+            "_line", _raw_json(plan, fmt).alias("_raw"))
+        conf = conf.join(raw, on="_line", how="left")
+        bad = pl.concat([bad, conf.select(bad.columns)])
+    return cand, bad, dups
+
+
+# =========================================================================== driver
+
+def _now() -> datetime:
+    return datetime.now(timezone.utc)
+
+
+def _ledger_row(fr: FileReport, started: datetime) -> pl.DataFrame:
+    return pl.DataFrame({
+        "batch_id": [fr.batch_id], "kind": [fr.kind], "source_file": [fr.path],
+        "content_sha256": [fr.content_sha256], "rows_read": [fr.rows_read],
+        "accepted": [fr.accepted], "quarantined": [fr.quarantined],
+        "duplicates": [fr.duplicates], "status": [fr.status], "message": [fr.message or None],
+        "started_at": [started], "finished_at": [_now()],
+    })
+
+
+def _done_hashes(lake: Lake) -> set[tuple[str, str]]:
+    ds = lake.raw_dataset("batches")
+    if ds is None:
+        return set()
+    t = pl.from_arrow(ds.to_table(columns=["content_sha256", "kind", "status"]))
+    t = t.filter(pl.col("status") == "ok")
+    return set(zip(t["content_sha256"].to_list(), t["kind"].to_list()))
+
+
+def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | None,
+                done: set, progress: Progress | None) -> FileReport:
+    shown = str(path.resolve())
+    fr = FileReport(path=shown, kind=kind)
+    started = _now()
+    try:
+        fr.content_sha256 = _file_sha256(path)
+    except OSError as exc:
+        fr.status, fr.message = "refused", f"{shown}: cannot read ({exc.strerror or exc})"
+        return fr
+    if (fr.content_sha256, kind) in done:
+        fr.status = "skipped"
+        fr.message = "already ingested (same content hash); nothing to do"
+        return fr
+    fr.batch_id = f"{INGEST_BATCH_PREFIX}{started:%Y%m%dT%H%M%S}-{fr.content_sha256[:12]}-" \
+                  f"{secrets.token_hex(2)}"
+    src: _Source | None = None
+    begun = False
+    try:
+        src = _open_source(path, mapping, int(settings.ingest_chunk_rows))
+        plan = _make_plan(kind, src, mapping, settings, path)
+        lake.begin_batch(fr.batch_id)
+        begun = True
+        ingested_at = started
+        if progress:
+            progress(shown, 0, src.bytes_total)
+        for chunk in src.chunks():
+            if chunk.height == 0:
+                continue
+            good, bad = _validate(chunk, plan, settings, src.fmt)
+            accepted, bad, dups = _split(good, bad, plan, lake, chunk, src.fmt)
+            fr.rows_read += chunk.height
+            fr.duplicates += dups
+            if accepted.height:
+                out = accepted.select([pl.col(_C + c).alias(c) for c in FIELDS[kind]])
+                out = out.with_columns(batch_id=pl.lit(fr.batch_id))
+                if kind == "telemetry":
+                    out = out.with_columns(day=pl.col("ts").dt.date())
+                lake.append(kind, out)
+                fr.accepted += accepted.height
+            if bad.height:
+                q = bad.select(
+                    pl.lit(fr.batch_id).alias("batch_id"), pl.lit(shown).alias("source_file"),
+                    pl.col("_line").alias("line"), pl.col("_col").alias("column"),
+                    pl.col("_rule").alias("rule"), pl.col("_msg").alias("message"),
+                    pl.col("_raw").alias("raw"), pl.lit(kind).alias("kind"),
+                    pl.lit(ingested_at).cast(pl.Datetime("us", "UTC")).alias("ingested_at"))
+                lake.append("quarantine", q)
+                fr.quarantined += bad.height
+                for r, n in bad.group_by("_rule").len().iter_rows():
+                    fr.rules[r] = fr.rules.get(r, 0) + n
+            if progress:
+                progress(shown, src.bytes_done, src.bytes_total)
+        assert fr.rows_read == fr.accepted + fr.quarantined + fr.duplicates
+        notes = list(src.notes)
+        if fr.quarantined:
+            notes.append("quarantined: " + ", ".join(f"{n} {r}" for r, n in
+                                                    sorted(fr.rules.items())))
+        fr.message = "; ".join(notes)
+        lake.append("batches", _ledger_row(fr, started))
+        lake.end_batch(fr.batch_id)
+        done.add((fr.content_sha256, kind))
+        if progress:
+            progress(shown, src.bytes_total, src.bytes_total)
+        return fr
+    except _Refuse as exc:
+        if begun:
+            lake.rollback_batch(fr.batch_id)
+        fr.status = "refused"
+        fr.rows_read = fr.accepted = fr.quarantined = fr.duplicates = 0
+        fr.rules = {}
+        fr.message = exc.message + (f" -- {exc.hint}" if exc.hint else "")
+        lake.append("batches", _ledger_row(fr, started))   # the refusal is on record
+        if begun:
+            lake.end_batch(fr.batch_id)
+        return fr
+    finally:
+        if src is not None:
+            src.close()
+
+
+def ingest_files(paths, settings, mapping: str | os.PathLike | Mapping | None = None,
+                 kind: str = "telemetry", progress: Progress | None = None,
+                 strict: bool = False) -> IngestReport:
+    """Ingest files, folders (recursive) or globs into the lake of ``settings``.
+
+    Each file is one batch: accepted rows to ``kind`` (telemetry or maintenance), rejected
+    rows to ``quarantine``, one ``batches`` row. A file already ingested (same content hash
+    and kind) is skipped. A file that cannot be used is refused (status refused, message
+    says why and what to do) and the others still go in. ``progress(path, bytes_done,
+    bytes_total)`` is called per chunk. Holds the lake's writer lock for the whole call.
+
+    Raises UsageError (bad kind, no paths), InputError (bad mapping file), LockHeldError.
+    """
+    if kind not in KINDS:
+        raise UsageError(f"unknown kind '{kind}'", hint="Use --kind telemetry or maintenance.")
+    if not paths:
+        raise UsageError("no input files given", hint="fleetwatch ingest PATH...")
+    mp = mapping if isinstance(mapping, Mapping) or mapping is None else load_mapping(mapping)
+    files, missing = discover_files(paths)
+    report = IngestReport(strict=strict)
+    for m in missing:
+        report.files.append(FileReport(path=m, kind=kind, status="refused",
+                                       message=f"{m}: no such file, folder or matching glob"))
+    lake = Lake.from_settings(settings)
+    if files:
+        with lake.writer("ingest"):
+            undone = lake.recover()
+            if undone:
+                report.notes.append("removed the rows of batches interrupted earlier (they "
+                                    "had no ledger row): " + ", ".join(undone))
+            done = _done_hashes(lake)
+            for p in files:
+                report.files.append(_ingest_one(p, kind, lake, settings, mp, done, progress))
+    for f in report.files:
+        if f.status == "refused":
+            report.errors.append(f.message)
+    return report

@@ -1,0 +1,413 @@
+"""Ingest: mapping, units, time zones, validation, duplicates, accounting, formats, CLI."""
+import gzip
+import json
+import math
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+from zoneinfo import ZoneInfo
+
+import polars as pl
+import pytest
+
+from fleetwatch.config import load_settings
+from fleetwatch.errors import InputError, UsageError
+from fleetwatch.ingest import ingest_files, load_mapping
+from fleetwatch.lake import Lake
+
+UTC = timezone.utc
+ROOT = Path(__file__).resolve().parents[1]
+LISBON = ZoneInfo("Europe/Lisbon")
+
+MESSY_MAPPING = """
+[format]
+delimiter = ";"
+timezone = "Europe/Lisbon"
+
+[columns]
+unit_id = "drive"
+ts = "time"
+n_in = { column = "input_speed", unit = "rad/s" }
+n_out = { column = "output_speed", unit = "rpm" }
+ratio_cmd = "ratio_setpoint"
+p_in = { column = "power", unit = "kW" }
+temp = { column = "temperature", unit = "degC" }
+"""
+HEADER = "drive;time;input_speed;output_speed;ratio_setpoint;power;temperature;comment"
+W = 2 * math.pi / 60 * 1000          # 1000 rpm in rad/s (NIST SP 811 B.8: 1 rpm = 2*pi/60 rad/s)
+
+
+def _row(unit, ts, n_in=f"{W!r}", n_out="500", ratio="2.0", power="1.5", temp="40", comment=""):
+    return ";".join([unit, ts, n_in, n_out, ratio, power, temp, comment])
+
+
+# (text of the record, expected outcome): ok / dup / a quarantine rule
+MESSY = [
+    (_row("U1", "2024-03-31 00:30:00"), "ok"),                       # 00:30 WET = 00:30Z
+    (_row("U1", "2024-03-31 01:30:00"), "nonexistent_local_time"),   # spring-forward gap
+    (_row("U1", "2024-03-31 02:30:00"), "ok"),                       # 02:30 WEST = 01:30Z
+    (_row("U1", "2024-10-27 01:30:00"), "ambiguous_local_time"),     # fall-back hour
+    (_row("U1", "2024-10-27T01:30:00+01:00"), "ok"),                 # offset: 00:30Z
+    (_row("U1", "2024-10-27T01:30:00+00:00"), "ok"),                 # offset: 01:30Z
+    (_row("U2", "2024-03-31 00:30:00", n_in="abc"), "not_numeric"),
+    (_row("U2", "2024-03-31 00:40:00", n_in="-5"), "out_of_range"),
+    (_row("U2", "2024-03-31 00:50:00", ratio="9.0"), "out_of_range"),
+    ("", "blank"),
+    (_row("", "2024-03-31 01:00:00"), "empty_unit_id"),
+    (_row("U2", "not a time"), "bad_timestamp"),
+    (_row("U1", "2024-03-31 00:30:00"), "dup"),                      # same as record 1
+    (_row("U1", "2024-03-31T00:30:00Z"), "dup"),                     # same instant, same values
+    (_row("U1", "2024-03-31 02:30:00", n_out="499"), "conflicting_duplicate"),
+    (_row("U3", "2024-03-31 00:45:00", comment='"two\nlines"'), "ok"),
+    (_row("U2", "2024-03-31 00:55:00", n_in="nan"), "not_finite"),
+    (_row("U2", "2024-03-31 01:05:00") + ";surplus", "malformed_row"),
+    (_row("U2", "2024-03-31 00:15:00", temp=""), "ok"),              # optional value missing
+    (_row("U2", "2024-03-31 00:25:00", power=""), "missing_value"),  # p_in required here
+]
+
+
+def _settings(tmp_path, **kw):
+    return load_settings(tmp_path / "proj", env={}, overrides=kw or None)
+
+
+def _write_messy(folder: Path):
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "mapping.toml").write_text(MESSY_MAPPING)
+    text = HEADER + "\n" + "\n".join(r for r, _ in MESSY) + "\n"
+    (folder / "export.csv").write_text(text)
+    # physical line of each record: header is line 1, quoted line breaks count
+    lines, line = [], 2
+    for rec, _ in MESSY:
+        lines.append(line)
+        line += rec.count("\n") + 1
+    return folder / "export.csv", folder / "mapping.toml", lines
+
+
+def test_messy_export_exact_accounting_and_traceable_quarantine(tmp_path):
+    path, mapping, lines = _write_messy(tmp_path / "in")
+    settings = _settings(tmp_path)
+    rep = ingest_files([path], settings, mapping=mapping)
+    f = rep.files[0]
+    outcomes = [o for _, o in MESSY if o != "blank"]
+    assert f.status == "ok", f.message
+    assert f.rows_read == len(outcomes) == 19
+    assert f.accepted == outcomes.count("ok") == 6
+    assert f.duplicates == outcomes.count("dup") == 2
+    bad = [o for o in outcomes if o not in ("ok", "dup")]
+    assert f.quarantined == len(bad) == 11
+    assert f.rows_read == f.accepted + f.quarantined + f.duplicates
+    assert rep.exit_code == 0 and not rep.errors
+
+    lake = Lake.from_settings(settings)
+    q = lake.read("quarantine").sort("line")
+    expected = sorted((lines[i], o) for i, (_, o) in enumerate(MESSY)
+                      if o not in ("ok", "dup", "blank"))
+    assert list(zip(q["line"].to_list(), q["rule"].to_list())) == expected
+    # each quarantined row points at its physical line and keeps the raw text
+    text_lines = path.read_text().split("\n")
+    for line, raw in zip(q["line"], q["raw"]):
+        values = json.loads(raw)
+        assert text_lines[line - 1].startswith(values["drive"] + ";" + values["time"])
+    row = q.filter(pl.col("rule") == "not_numeric").row(0, named=True)
+    assert row["column"] == "input_speed" and "'abc'" in row["message"]
+    assert row["source_file"] == str(path.resolve()) and row["kind"] == "telemetry"
+    assert q.filter(pl.col("rule") == "malformed_row")["column"].to_list() == [None]
+
+    t = lake.read("telemetry").sort("unit_id", "ts")
+    assert t.height == 6
+    u1 = t.filter(pl.col("unit_id") == "U1")
+    assert u1["ts"].to_list() == [datetime(2024, 3, 31, 0, 30, tzinfo=UTC),
+                                  datetime(2024, 3, 31, 1, 30, tzinfo=UTC),
+                                  datetime(2024, 10, 27, 0, 30, tzinfo=UTC),
+                                  datetime(2024, 10, 27, 1, 30, tzinfo=UTC)]
+    assert t["n_in"].to_list() == pytest.approx([1000.0] * 6)      # rad/s -> rpm
+    assert t["p_in"].to_list() == pytest.approx([1500.0] * 6)      # kW -> W
+    assert t["v_in"].null_count() == 6
+    assert t.filter(pl.col("unit_id") == "U2")["temp"].to_list() == [None]
+    b = lake.read("batches")
+    assert b.select("rows_read", "accepted", "quarantined", "duplicates", "status").row(0) == \
+        (19, 6, 11, 2, "ok")
+    assert b["batch_id"][0] == f.batch_id and set(t["batch_id"]) == {f.batch_id}
+
+
+def _zoneinfo_kind(naive: datetime, tz: ZoneInfo) -> str:
+    """Python zoneinfo's verdict: a local time that does not survive a UTC round trip does
+    not exist; one whose two folds have different offsets is ambiguous (PEP 495)."""
+    a = naive.replace(tzinfo=tz, fold=0)
+    b = naive.replace(tzinfo=tz, fold=1)
+    if a.astimezone(UTC).astimezone(tz).replace(tzinfo=None) != naive:
+        return "nonexistent_local_time"
+    if a.utcoffset() != b.utcoffset():
+        return "ambiguous_local_time"
+    return "ok"
+
+
+@pytest.mark.parametrize("day", ["2024-03-31", "2024-10-27"])
+def test_dst_rules_agree_with_zoneinfo(tmp_path, day):
+    """Every 10 minutes around Lisbon's 2024 clock changes: ingest's verdict and UTC
+    instant match Python's zoneinfo; one offset-carrying time is taken as is."""
+    start = datetime.fromisoformat(day).replace(hour=0)
+    locals_ = [start + timedelta(minutes=10 * k) for k in range(19)]      # 00:00 .. 03:00
+    rows = [_row("U1", t.strftime("%Y-%m-%d %H:%M:%S"), temp=str(k))
+            for k, t in enumerate(locals_)]
+    rows.append(_row("U9", f"{day}T01:30:00+01:00"))
+    folder = tmp_path / "in"
+    folder.mkdir()
+    (folder / "mapping.toml").write_text(MESSY_MAPPING)
+    (folder / "dst.csv").write_text(HEADER + "\n" + "\n".join(rows) + "\n")
+    settings = _settings(tmp_path)
+    ingest_files([folder / "dst.csv"], settings, mapping=folder / "mapping.toml")
+    lake = Lake.from_settings(settings)
+    q = {r["line"]: r["rule"] for r in lake.read("quarantine").iter_rows(named=True)}
+    t = lake.read("telemetry")
+    got_ts = {int(r["temp"]): r["ts"] for r in t.filter(pl.col("unit_id") == "U1")
+              .iter_rows(named=True)}
+    kinds = []
+    for k, naive in enumerate(locals_):
+        kind = _zoneinfo_kind(naive, LISBON)
+        kinds.append(kind)
+        if kind == "ok":
+            assert got_ts[k] == naive.replace(tzinfo=LISBON).astimezone(UTC), naive
+        else:
+            assert q[k + 2] == kind, naive
+    assert kinds.count("ok") < len(kinds)            # the window does hold a DST change
+    u9 = t.filter(pl.col("unit_id") == "U9")["ts"].to_list()
+    assert u9 == [datetime.fromisoformat(f"{day}T00:30:00+00:00")]
+
+
+def test_conflicting_duplicates_against_the_lake_never_overwrite(tmp_path):
+    settings = _settings(tmp_path)
+    folder = tmp_path / "in"
+    folder.mkdir()
+    (folder / "mapping.toml").write_text(MESSY_MAPPING)
+    a = [_row("U1", f"2024-05-01T10:0{i}:00Z") for i in range(5)]
+    (folder / "a.csv").write_text(HEADER + "\n" + "\n".join(a) + "\n")
+    b = [a[0], a[1], _row("U1", "2024-05-01T10:02:00Z", n_out="480"),
+         _row("U1", "2024-05-01T10:09:00Z")]
+    (folder / "b.csv").write_text(HEADER + "\n" + "\n".join(b) + "\n")
+    rep = ingest_files([folder / "a.csv", folder / "b.csv"], settings,
+                       mapping=folder / "mapping.toml")
+    fa, fb = rep.files
+    assert (fa.accepted, fa.duplicates, fa.quarantined) == (5, 0, 0)
+    assert (fb.rows_read, fb.accepted, fb.duplicates, fb.quarantined) == (4, 1, 2, 1)
+    lake = Lake.from_settings(settings)
+    q = lake.read("quarantine")
+    assert q["rule"].to_list() == ["conflicting_duplicate"] and q["line"].to_list() == [4]
+    assert fa.batch_id in q["message"][0]
+    t = lake.read("telemetry")
+    assert t.height == 6
+    assert t.filter(pl.col("ts") == datetime(2024, 5, 1, 10, 2, tzinfo=UTC))["n_out"].to_list() \
+        == [500.0]                                          # the lake's value is kept
+
+
+def test_reingest_is_a_noop_that_says_so(tmp_path):
+    path, mapping, _ = _write_messy(tmp_path / "in")
+    settings = _settings(tmp_path)
+    ingest_files([path], settings, mapping=mapping)
+    lake = Lake.from_settings(settings)
+    before = lake.versions()
+    copy = tmp_path / "in" / "copy-of-export.csv"
+    copy.write_bytes(path.read_bytes())
+    rep = ingest_files([path, copy], settings, mapping=mapping)
+    assert [f.status for f in rep.files] == ["skipped", "skipped"]
+    assert "already ingested" in rep.files[0].message
+    assert rep.exit_code == 0
+    assert lake.versions() == before
+
+
+def test_refused_files_do_not_stop_the_others(tmp_path):
+    path, mapping, _ = _write_messy(tmp_path / "in")
+    other = tmp_path / "in" / "other.csv"
+    other.write_text("drive;when;speed\nU1;2024-01-01T00:00:00Z;5\n")
+    binary = tmp_path / "in" / "garbage.csv"
+    binary.write_bytes(b"\x00\x01\x02PK\x03\x04" * 100)
+    sheet = tmp_path / "in" / "log.xlsx"
+    sheet.write_bytes(b"PK\x03\x04 not a log")
+    settings = _settings(tmp_path)
+    rep = ingest_files([other, binary, sheet, path, tmp_path / "nothing-*.csv"], settings,
+                       mapping=mapping)
+    st = {Path(f.path).name: f for f in rep.files}
+    assert st["other.csv"].status == "refused"
+    msg = st["other.csv"].message
+    assert "column 'time' (mapped to ts) not found" in msg and "drive, when, speed" in msg
+    assert "mapping" in msg
+    assert st["garbage.csv"].status == "refused" and "binary" in st["garbage.csv"].message
+    assert st["log.xlsx"].status == "refused" and "not a CSV, Parquet or NDJSON" in \
+        st["log.xlsx"].message
+    assert st["nothing-*.csv"].status == "refused"
+    assert st["export.csv"].status == "ok" and st["export.csv"].accepted == 6
+    assert rep.exit_code == 1 and len(rep.errors) == 4
+    lake = Lake.from_settings(settings)
+    b = lake.read("batches")
+    # one ledger row per file that could be read (the glob that matched nothing has none)
+    assert sorted(b["status"].to_list()) == ["ok", "refused", "refused", "refused"]
+    assert b.filter(pl.col("status") == "refused")["accepted"].to_list() == [0, 0, 0]
+    assert lake.read("telemetry").height == 6
+
+
+def test_unknown_unit_refuses_the_file_listing_units(tmp_path):
+    path, _, _ = _write_messy(tmp_path / "in")
+    bad = tmp_path / "in" / "bad.toml"
+    bad.write_text(MESSY_MAPPING.replace('unit = "rad/s"', 'unit = "deg/s"'))
+    rep = ingest_files([path], _settings(tmp_path), mapping=bad)
+    f = rep.files[0]
+    assert f.status == "refused" and "deg/s" in f.message and "rad/s" in f.message
+    assert rep.exit_code == 1
+
+
+def test_strict_turns_quarantine_into_exit_1(tmp_path):
+    path, mapping, _ = _write_messy(tmp_path / "in")
+    rep = ingest_files([path], _settings(tmp_path), mapping=mapping, strict=True)
+    assert rep.files[0].status == "ok" and rep.exit_code == 1
+
+
+def _frame(n=6):
+    ts = [datetime(2024, 6, 1, 12, tzinfo=UTC) + timedelta(minutes=i) for i in range(n)]
+    return pl.DataFrame({"unit_id": ["P1"] * n, "ts": ts, "v_in": [24.0] * n,
+                         "i_in": [2.0] * n, "n_in": [1200.0] * n, "n_out": [600.0] * n,
+                         "ratio_cmd": [2.0] * n})
+
+
+def test_gzip_parquet_and_ndjson_inputs(tmp_path):
+    df = _frame()
+    folder = tmp_path / "in"
+    (folder / "sub").mkdir(parents=True)
+    csv_text = df.with_columns(pl.col("ts").dt.to_string("%Y-%m-%dT%H:%M:%SZ")).write_csv()
+    with gzip.open(folder / "a.csv.gz", "wt") as fh:
+        fh.write(csv_text)
+    df.with_columns(unit_id=pl.lit("P2")).write_parquet(folder / "sub" / "b.parquet")
+    nd = df.with_columns(unit_id=pl.lit("P3"), ts=pl.col("ts").dt.to_string("%Y-%m-%dT%H:%M:%S%:z"))
+    lines = [json.dumps(r) for r in nd.to_dicts()]
+    lines.insert(2, "{broken json")
+    lines.insert(4, "")
+    (folder / "sub" / "c.ndjson").write_text("\n".join(lines) + "\n")
+    settings = _settings(tmp_path)
+    rep = ingest_files([folder], settings)          # folder: recursive, canonical names
+    st = {Path(f.path).name: f for f in rep.files}
+    assert set(st) == {"a.csv.gz", "b.parquet", "c.ndjson"}
+    assert all(f.status == "ok" for f in rep.files), [f.message for f in rep.files]
+    assert (st["a.csv.gz"].accepted, st["b.parquet"].accepted, st["c.ndjson"].accepted) == \
+        (6, 6, 6)
+    assert st["c.ndjson"].rows_read == 7 and st["c.ndjson"].quarantined == 1
+    lake = Lake.from_settings(settings)
+    q = lake.read("quarantine")
+    assert q["rule"].to_list() == ["malformed_row"] and q["line"].to_list() == [3]
+    assert q["raw"].to_list() == ["{broken json"]
+    t = lake.read("telemetry")
+    assert t.group_by("unit_id").len().sort("unit_id")["len"].to_list() == [6, 6, 6]
+    assert t["p_in"].to_list() == [48.0] * 18            # p_in = v_in * i_in when absent
+    assert t.filter(pl.col("unit_id") == "P2")["ts"].to_list() == df["ts"].to_list()
+
+
+def test_parquet_naive_times_use_the_plant_timezone(tmp_path):
+    df = _frame(2).with_columns(pl.col("ts").dt.replace_time_zone(None))
+    df.write_parquet(tmp_path / "x.parquet")
+    bad = df.with_columns(n_out=pl.lit(-1.0))
+    bad.write_parquet(tmp_path / "y.parquet")
+    settings = _settings(tmp_path, plant_timezone="Europe/Lisbon")
+    rep = ingest_files([tmp_path / "x.parquet", tmp_path / "y.parquet"], settings)
+    assert rep.files[1].quarantined == 2
+    t = Lake.from_settings(settings).read("telemetry")
+    # 12:00 in Lisbon summer time (WEST, UTC+1) is 11:00 UTC
+    assert t["ts"].min() == datetime(2024, 6, 1, 11, tzinfo=UTC)
+    q = Lake.from_settings(settings).read("quarantine")
+    assert q["line"].sort().to_list() == [1, 2]           # row numbers for Parquet
+
+
+def test_latin1_and_decimal_comma(tmp_path):
+    mapping = tmp_path / "m.toml"
+    mapping.write_text('[format]\ndecimal = ","\n[columns]\nunit_id = "Máquina"\n')
+    text = ("Máquina;ts;v_in;i_in;n_in;n_out;ratio_cmd\n"
+            "Moínho-1;2024-01-01T00:00:00Z;24,5;2,0;1200;600;2,0\n"
+            "Moínho-1;2024-01-01T00:01:00Z; 24,5 ;2;1200;600;2\n")
+    (tmp_path / "l.csv").write_bytes(text.encode("latin-1"))
+    settings = _settings(tmp_path)
+    rep = ingest_files([tmp_path / "l.csv"], settings, mapping=mapping)
+    f = rep.files[0]
+    assert (f.status, f.accepted) == ("ok", 2), f.message
+    assert "latin-1" in f.message
+    t = Lake.from_settings(settings).read("telemetry")
+    assert t["unit_id"].to_list() == ["Moínho-1"] * 2
+    assert t["p_in"].to_list() == [49.0, 49.0]
+
+
+def test_maintenance_log_with_resets_wear(tmp_path):
+    log = tmp_path / "maint.csv"
+    log.write_text("who,when,what,remarks\n"
+                   "U1,2024-02-01 08:00,Roller replaced,new roller\n"
+                   "U2,2024-02-02 09:00,inspection,\n"
+                   "U1,2024-02-03 10:00,cones reground after slip,\n"
+                   "U1,2024-02-03 10:00,cones reground after slip,\n"
+                   ",2024-02-04 10:00,inspection,\n"
+                   "U3,2024-02-05 10:00,,forgot the action\n")
+    mapping = tmp_path / "m.toml"
+    mapping.write_text('[format]\ntimezone = "UTC"\n[columns]\nunit_id = "who"\nts = "when"\n'
+                       'action = "what"\nnote = "remarks"\n'
+                       '[maintenance]\nresets_wear = ["roller replaced", "cones reground"]\n')
+    settings = _settings(tmp_path)
+    rep = ingest_files([log], settings, mapping=mapping, kind="maintenance")
+    f = rep.files[0]
+    assert (f.rows_read, f.accepted, f.duplicates, f.quarantined) == (6, 3, 1, 2)
+    lake = Lake.from_settings(settings)
+    m = lake.read("maintenance").sort("ts")
+    assert m["resets_wear"].to_list() == [True, False, True]
+    assert m["note"].to_list() == ["new roller", None, None]
+    q = lake.read("quarantine").sort("line")
+    assert q["rule"].to_list() == ["empty_unit_id", "missing_value"]
+    assert set(q["kind"]) == {"maintenance"}
+
+
+def test_mapping_file_errors(tmp_path):
+    p = tmp_path / "m.toml"
+    p.write_text("[columns]\nspeed = 'x'\n")
+    with pytest.raises(InputError, match="'speed' is not a canonical column"):
+        load_mapping(p)
+    p.write_text("[format]\ntimezone = 'Mars/Olympus'\n")
+    with pytest.raises(InputError, match="unknown time zone"):
+        load_mapping(p)
+    p.write_text("[format\n")
+    with pytest.raises(InputError):
+        load_mapping(p)
+    with pytest.raises(UsageError):
+        ingest_files([tmp_path], load_settings(tmp_path, env={}), kind="spares")
+
+
+def test_sample_data_accounting_matches_answer_key(tmp_path):
+    key = json.loads((ROOT / "sample_data" / "answer_key.json").read_text())
+    settings = _settings(tmp_path)
+    rep = ingest_files([str(ROOT / "sample_data" / "telemetry_*.csv")], settings,
+                       mapping=ROOT / "sample_data" / "mapping.toml")
+    assert all(f.status == "ok" for f in rep.files)
+    for f in rep.files:
+        want = key["files"][Path(f.path).name]
+        assert f.rows_read == want["rows"]
+        assert f.duplicates == want["duplicate_rows"]
+        assert f.quarantined == want["corrupt_rows"]
+    lake = Lake.from_settings(settings)
+    q = lake.read("quarantine")
+    want_lines = sorted((n, c["line"]) for n, v in key["files"].items() for c in v["corrupt"])
+    got_lines = sorted((Path(s).name, ln) for s, ln in zip(q["source_file"], q["line"]))
+    assert got_lines == want_lines
+    assert rep.totals["accepted"] == key["totals"]["clean_rows"]
+    m = ingest_files([ROOT / "sample_data" / "maintenance.csv"], settings,
+                     mapping=ROOT / "sample_data" / "maintenance_mapping.toml",
+                     kind="maintenance")
+    assert m.files[0].accepted == key["maintenance"]["rows"]
+
+
+def test_cli_ingest_json_and_exit_codes(tmp_path, capsys):
+    from fleetwatch.cli import main
+
+    path, mapping, _ = _write_messy(tmp_path / "in")
+    proj = tmp_path / "proj"
+    with pytest.raises(SystemExit) as ex:
+        main(["--project", str(proj), "ingest", "--json", "--mapping", str(mapping), str(path)])
+    assert ex.value.code == 0
+    out = json.loads(capsys.readouterr().out)          # only JSON on stdout
+    assert out["totals"]["accepted"] == 6 and out["files"][0]["status"] == "ok"
+    with pytest.raises(SystemExit) as ex:
+        main(["--project", str(proj), "ingest", "--strict", "--mapping", str(mapping),
+              str(path), str(tmp_path / "missing.csv")])
+    assert ex.value.code == 1
+    cap = capsys.readouterr()
+    assert "skipped" in cap.out and "refused" in cap.out
+    assert "Error: " in cap.err and "missing.csv" in cap.err
