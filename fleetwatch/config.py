@@ -105,6 +105,9 @@ SETTINGS: tuple[Setting, ...] = tuple(
          "Days after a unit's first data (or its last wear reset) that form its reference period."),
         ("load_ref_nm", 1.0, "N*m",
          "Motor shaft torque at which 'steady slip at rated load' is evaluated (a + b*load)."),
+        ("motor_i0_a", 0.2, "A",
+         "No-load current I_0 of the motors in T_shaft = k_e*(I - I_0) when output torque is "
+         "not logged (domain.md section 6 #8 example value; set it from the motor data sheet)."),
     ])
     + _s("health", [
         ("slip_limit", 0.05, "-",
@@ -122,11 +125,17 @@ SETTINGS: tuple[Setting, ...] = tuple(
         ("stall_repeat", 2, "events", "Stalls in one day at or above this raise an alert at once."),
         ("forecast_confidence", 0.90, "-", "Confidence level of the Theil-Sen slope interval."),
         ("min_trend_days", 7, "d", "Fewest days with data behind a trend or forecast."),
+        ("trend_window_days", 42, "d",
+         "A trend as of a day looks back at most this many days since the last wear reset "
+         "(bounds the cost, follows wear that speeds up; common practice, no source)."),
         ("random_state", 0, "-", "Seed of the isolation forest (fixed for reproducible reports)."),
     ])
     + _s("report", [
         ("reports_dir", "reports", "path", "Folder of weekly reports, relative to the project."),
         ("report_units_max", 30, "units", "Most units given an evidence section in one report."),
+        ("plan_margin_days", 7, "d",
+         "actions.csv plans work this many days before the forecast limit crossing (never "
+         "before the report date; common practice, no source)."),
     ])
     + _s("dashboard", [
         ("dashboard_host", "127.0.0.1", "host", "Address the dashboard listens on."),
@@ -138,6 +147,12 @@ SETTINGS: tuple[Setting, ...] = tuple(
          "Highest ratio a drive may be asked to start in (steep ratios stall at start)."),
         ("motor_n_max_rpm", 3500.0, "rpm", "Motor speed limit the advisor respects."),
         ("motor_i_max_a", 10.0, "A", "Motor current limit the advisor respects."),
+        ("duty_bins_per_decade", 10, "bins/decade",
+         "Duty bins per decade of output speed and of output torque: 5, 10 or 20 (ISO 3 "
+         "preferred-number series R5/R10/R20; R10 bins are about 26 % wide)."),
+        ("advice_bootstrap", 200, "replicates",
+         "Bootstrap replicates (days resampled) behind the advisor's saving intervals."),
+        ("advice_confidence", 0.90, "-", "Confidence level of the advisor's saving intervals."),
     ])
 )
 

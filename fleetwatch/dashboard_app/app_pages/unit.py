@@ -1,0 +1,99 @@
+"""Unit page: one drive over a chosen time range: slip with trend and limit, creep versus
+load by week, commanded vs actual ratio, input power with efficiency or residual,
+temperature, events and maintenance on the time axis, health history, anomaly scores."""
+from __future__ import annotations
+
+import streamlit as st
+
+from fleetwatch import dashboard as dash
+from fleetwatch import views
+from fleetwatch.dashboard_app import ui
+
+settings = ui.settings_or_stop()
+st.title("Unit")
+
+units = ui.load(views.known_units, settings)
+if not units:
+    ui.no_data("units")
+    st.stop()
+
+
+def _sync_query() -> None:
+    st.query_params["unit"] = st.session_state["unit_pick"]
+
+
+asked = st.query_params.get("unit")
+if asked in units and st.session_state.get("unit_pick") != asked:
+    st.session_state["unit_pick"] = asked
+elif st.session_state.get("unit_pick") not in units:
+    st.session_state["unit_pick"] = units[0]
+
+c1, c2, c3 = st.columns([1, 2, 2])
+unit = c1.selectbox("Unit", units, key="unit_pick", on_change=_sync_query)
+span = ui.load(dash.unit_span, settings, unit_id=unit)
+if span is None:
+    ui.no_data(f"analysed days for {unit}")
+    st.stop()
+preset = c2.radio("Time range", list(dash.RANGE_PRESETS), index=1, horizontal=True,
+                  key="unit_range_preset")
+start, end = dash.preset_range(preset, *span)
+if preset == "Custom":
+    rng = c3.date_input("From / to (UTC days)", value=(start, end), min_value=span[0],
+                        max_value=span[1], key="unit_range")
+    start, end = dash.date_range(rng, start, end)
+else:
+    c3.caption(f"Showing {start} to {end} (UTC days); data from {span[0]} to {span[1]}.")
+
+overview = ui.load(views.fleet_overview, settings)
+now = overview.filter(overview["unit_id"] == unit)
+if now.height:
+    r = now.row(0, named=True)
+    st.markdown(f"{ui.status_badge(r['status'])} since {r['since'] or '–'} · days to slip "
+                f"limit: **{dash.fmt_days(r['days_to_limit'])}** · last data "
+                f"{r['last_data']:%Y-%m-%d %H:%M} UTC" if r["last_data"] else
+                f"{ui.status_badge(r['status'])}", unsafe_allow_html=True)
+    for reason in filter(None, (r["reasons"] or "").split(" | ")):
+        st.markdown(f"- {reason}")
+
+view = ui.load(dash.unit_view, settings, unit_id=unit, start=start, end=end,
+               limit=settings.slip_limit, threshold=settings.watch_score)
+
+st.subheader("Wear")
+w1, w2 = st.columns(2)
+with w1:
+    ui.chart(view.charts["slip"], empty="No steady slip at rated load in this range.")
+with w2:
+    week = st.selectbox("Creep week", dash.weeks_in(start, end), format_func=str,
+                        key="unit_creep_week")
+    ui.chart(ui.load(dash.creep_spec, settings, unit_id=unit, week=week,
+                     timezone=settings.plant_timezone),
+             empty=f"No steady windows with load in {week}.")
+
+st.subheader("Operation")
+o1, o2 = st.columns(2)
+with o1:
+    ui.chart(view.charts["ratio"], empty="No steady-state ratio data in this range.")
+with o2:
+    ui.chart(view.charts["power"], empty="No input power data in this range.")
+if view.charts["temperature"] is None:
+    st.caption("No temperature logged for this unit in this range.")
+else:
+    ui.chart(view.charts["temperature"])
+
+st.subheader("Health")
+ui.chart(view.charts["health"], empty="No health results in this range.")
+h1, h2 = st.columns(2)
+with h1:
+    st.markdown("**Status changes and their reasons**")
+    st.dataframe(view.health_changes, hide_index=True, placeholder="–", key="unit_health_table")
+with h2:
+    ui.chart(view.charts["scores"], empty="No anomaly scores in this range.")
+    if view.top_scores.height:
+        st.markdown("**Highest scores and the features that drove them**")
+        st.dataframe(view.top_scores, hide_index=True, placeholder="–", key="unit_scores_table")
+
+st.subheader("Events and maintenance")
+if view.markers.is_empty():
+    st.caption("No events or maintenance in this range.")
+else:
+    st.dataframe(view.markers, hide_index=True, placeholder="–", key="unit_markers_table")

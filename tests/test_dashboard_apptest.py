@@ -1,0 +1,478 @@
+"""Dashboard pages under Streamlit's AppTest, on a small lake with known statuses.
+
+Each test runs the packaged app (``fleetwatch/dashboard_app/app.py``, what
+``fleetwatch dashboard`` serves) in-process and checks what the pages show.
+"""
+from __future__ import annotations
+
+import datetime as dt
+import json
+import time
+from pathlib import Path
+
+import polars as pl
+import pyarrow as pa
+import pytest
+from streamlit.testing.v1 import AppTest
+
+from dashboard_project import (PACKAGED_APP, ROOT, THIN_APP, build_project, expected_status,
+                               simulated_fleet)
+from fleetwatch import dashboard as dash
+from fleetwatch.config import load_settings
+from fleetwatch.errors import UsageError
+
+UNIT_PAGE = "app_pages/unit.py"
+
+
+@pytest.fixture(scope="module")
+def project(tmp_path_factory):
+    root = tmp_path_factory.mktemp("dash_project")
+    truth = build_project(root)
+    return root, truth
+
+
+@pytest.fixture
+def app(project, monkeypatch):
+    root, _ = project
+    monkeypatch.setenv("FLEETWATCH_PROJECT", str(root))
+
+    def make(script: Path = PACKAGED_APP) -> AppTest:
+        return AppTest.from_file(str(script), default_timeout=60)
+    return make
+
+
+def _ok(at: AppTest) -> AppTest:
+    assert not at.exception, [e.message for e in at.exception]
+    return at
+
+
+def _specs(at: AppTest) -> list[dict]:
+    """Vega-Lite specs of the page's charts, each with its datasets' rows as ``_rows``."""
+    out = []
+    for c in at.get("vega_lite_chart"):
+        spec = json.loads(c.proto.spec)
+        spec["_rows"] = {d.name: pl.from_arrow(pa.ipc.open_stream(d.data.data).read_all())
+                                 .to_dicts() for d in c.proto.datasets}
+        out.append(spec)
+    return out
+
+
+def _text(spec: dict) -> str:
+    return json.dumps(spec, default=str)
+
+
+def _titles(spec: dict) -> list[str]:
+    """Every chart title in a spec (top level, layers and stacks)."""
+    out = []
+
+    def walk(node):
+        if isinstance(node, dict):
+            t = node.get("title")
+            if isinstance(t, dict):
+                t = t.get("text")
+            if isinstance(t, str):
+                out.append(t)
+            for k in ("layer", "vconcat", "hconcat"):
+                for child in node.get(k, []):
+                    walk(child)
+    walk(spec)
+    return out
+
+
+def _open_unit(app, unit: str) -> AppTest:
+    """The Unit page opened by its address (``/unit?unit=...``)."""
+    at = _ok(app().run())
+    at.query_params["unit"] = unit
+    at.switch_page(UNIT_PAGE).run()
+    _ok(at)
+    assert at.selectbox(key="unit_pick").value == unit
+    return at
+
+
+# ------------------------------------------------------------------ fleet
+def test_fleet_page_counts_statuses_with_words(app, project):
+    _, truth = project
+    at = _ok(app().run())
+    assert at.title[0].value == "Fleet"
+    metrics = {m.label: int(m.value) for m in at.metric}
+    want = {s: list(truth.status_end.values()).count(s) for s in ("alert", "watch", "normal")}
+    assert metrics == {dash.status_label(s): n for s, n in want.items()}
+    # every status colour comes with its symbol and word
+    table = at.dataframe[0].value
+    assert len(table) == len(truth.status_end)
+    assert set(table["status"]) <= {dash.status_label(s) for s in want}
+    first = table.iloc[0]
+    assert first["status"] == dash.status_label("alert")      # most urgent first
+    assert first["main_reason"]
+    # the safety caption is on every page (sidebar)
+    assert any("lock" in c.value and "qualified people decide" in c.value
+               for c in at.sidebar.caption)
+
+
+def test_fleet_table_filters_by_line_and_status(app, project):
+    _, truth = project
+    at = _ok(app().run())
+    at.multiselect(key="fleet_lines").set_value(["L2"]).run()
+    table = _ok(at).dataframe[0].value
+    assert len(table) == sum(u.startswith("L2-") for u in truth.status_end)
+    assert all(u.startswith("L2-") for u in table["unit_id"])
+    at.multiselect(key="fleet_lines").set_value([]).run()
+    at.multiselect(key="fleet_status").set_value(["watch"]).run()
+    table = _ok(at).dataframe[0].value
+    assert sorted(table["unit_id"]) == sorted(u for u, s in truth.status_end.items()
+                                              if s == "watch")
+    at.selectbox(key="fleet_sort").set_value("Unit").run()
+    table = _ok(at).dataframe[0].value
+    assert list(table["unit_id"]) == sorted(table["unit_id"])
+
+
+def test_fleet_slip_distribution_chart_shows_the_limit(app):
+    at = _ok(app().run())
+    specs = _specs(at)
+    assert len(specs) == 1
+    text = _text(specs[0])
+    assert "p10" in text and "p90" in text and "p50" in text
+    assert "wear limit 5.0%" in text          # slip_limit default 0.05
+
+
+def test_choosing_a_unit_opens_it(app, project):
+    _, truth = project
+    wear_unit = next(u for u, c in truth.conditions.items() if c == "wear")
+    at = _ok(app().run())
+    at.selectbox(key="open_unit").set_value(wear_unit).run()
+    at.button(key="open_unit_btn").click().run()
+    _ok(at)
+    assert at.title[0].value == "Unit"
+    assert at.selectbox(key="unit_pick").value == wear_unit
+    assert at.query_params.get("unit") in (wear_unit, [wear_unit])
+    # its status, with the word, and its reasons are shown
+    md = " ".join(m.value for m in at.markdown)
+    assert dash.status_label(truth.status_end[wear_unit]) in md
+    assert "steady slip at load" in md
+
+
+def test_unit_page_draws_every_section(app, project):
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "wear")
+    at = _open_unit(app, unit)
+    titles = [t for s in _specs(at) for t in _titles(s)]
+    joined = " | ".join(titles)
+    for want in ("steady slip at load", "creep vs load", "Commanded against actual ratio",
+                 "Input power", "Temperature", "Status by day", "Anomaly score"):
+        assert want in joined, f"missing chart {want!r} in {titles}"
+    slip = next(s for s in _specs(at) if "steady slip at load" in " ".join(_titles(s)))
+    assert "wear limit 5.0%" in _text(slip)
+    # health changes carry the reasons; anomaly table names the driving features
+    frames = [d.value for d in at.dataframe]
+    changes = next(f for f in frames if "reasons" in f.columns)
+    assert list(changes["status"])[:2] == [dash.status_label("alert"),
+                                           dash.status_label("watch")]   # newest first
+    assert changes["reasons"].iloc[:2].str.contains("steady slip at load").all()
+    assert list(changes["status"])[2:] == [dash.status_label("normal")]
+    top = next(f for f in frames if "top_features" in f.columns)
+    assert top["top_features"].iloc[0].startswith("slip_at_load z=")
+
+
+def test_unit_time_range_changes_what_is_drawn(app, project):
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "stall")
+    at = _open_unit(app, unit)
+    at.radio(key="unit_range_preset").set_value("All").run()
+    health_all = next(d.value for d in _ok(at).dataframe if "reasons" in d.value.columns)
+    # the stall alert (days 45-57) and its clearing are both in the full range
+    assert health_all["status"].str.contains("alert").any()
+    at.radio(key="unit_range_preset").set_value("Custom").run()
+    at.date_input(key="unit_range").set_value(
+        (truth.start, truth.start + dt.timedelta(days=20))).run()
+    health_early = next(d.value for d in _ok(at).dataframe if "reasons" in d.value.columns)
+    assert not health_early["status"].str.contains("alert").any()
+
+
+def test_unit_markers_include_events_and_maintenance(app, project):
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "healthy")  # wear reset day 10
+    at = _open_unit(app, unit)
+    at.radio(key="unit_range_preset").set_value("All").run()
+    markers = next(d.value for d in _ok(at).dataframe if "source" in d.value.columns)
+    assert "maintenance" in set(markers["source"])
+    assert markers["detail"].str.contains("wear reset").any()
+
+
+# ------------------------------------------------------------------ events
+def test_events_page_filters_by_unit_kind_and_time(app, project):
+    _, truth = project
+    at = _ok(app().run())
+    at.switch_page("app_pages/events.py").run()
+    _ok(at)
+    assert at.title[0].value == "Events"
+    table = at.dataframe[0].value
+    assert len(table) > 0
+    at.multiselect(key="ev_kinds").set_value(["gross_slip"]).run()
+    table = _ok(at).dataframe[0].value
+    assert set(table["kind"]) == {"gross_slip"}
+    contaminated = next(u for u, c in truth.conditions.items() if c == "contamination")
+    assert set(table["unit_id"]) == {contaminated}
+    sensor = next(u for u, c in truth.conditions.items() if c == "sensor")
+    at.multiselect(key="ev_units").set_value([sensor]).run()
+    assert _ok(at).dataframe[0].value.empty     # the sensor unit has no gross slip
+    # time filter: the stall episode (days 45-57) lies outside the last 4 days
+    at.multiselect(key="ev_units").set_value([]).run()
+    at.multiselect(key="ev_kinds").set_value([]).run()
+    last = truth.start + dt.timedelta(days=truth.days - 1)
+    first = last - dt.timedelta(days=3)
+    at.date_input(key="ev_range").set_value((first, last)).run()
+    table = _ok(at).dataframe[0].value
+    assert "stall" not in set(table["kind"])
+    assert all(first <= t.date() <= last for t in table["start_ts"])
+
+
+def test_events_csv_has_the_filtered_rows(project):
+    root, _ = project
+    from fleetwatch.lake import Lake
+
+    ev = dash.filter_events(dash.fleet_events(Lake(root / "lake")), kinds=["stall"])
+    csv = dash.to_csv_bytes(ev).decode()
+    header, *rows = csv.strip().splitlines()
+    assert header.startswith("unit_id,")
+    assert len(rows) == ev.height > 0 and all(",stall," in r for r in rows)
+
+
+# ------------------------------------------------------------------ sql
+def _sql(app, text: str) -> AppTest:
+    at = _ok(app().run())
+    at.switch_page("app_pages/sql.py").run()
+    at.text_area(key="sql_text").set_value(text).run()
+    at.button(key="sql_run").click().run()
+    return at
+
+
+def test_sql_page_runs_a_query(app, project):
+    _, truth = project
+    at = _ok(_sql(app, "SELECT unit_id, count(*) AS days FROM health GROUP BY unit_id "
+                       "ORDER BY unit_id"))
+    assert not at.error
+    res = at.dataframe[0].value
+    assert list(res.columns) == ["unit_id", "days"]
+    assert len(res) == len(truth.status_end)
+    assert set(res["days"]) == {truth.days}
+
+
+def test_sql_page_example_queries_run(app):
+    at = _ok(app().run())
+    at.switch_page("app_pages/sql.py").run()
+    for name in dash.EXAMPLE_QUERIES:
+        at.selectbox(key="sql_example").set_value(name).run()
+        assert at.text_area(key="sql_text").value == dash.EXAMPLE_QUERIES[name]
+        at.button(key="sql_run").click().run()
+        _ok(at)
+        assert not at.error, (name, [e.value for e in at.error])
+
+
+def test_sql_page_shows_an_error_inline(app):
+    at = _ok(_sql(app, "SELECT no_such_column FROM health"))
+    assert len(at.error) == 1
+    assert "no_such_column" in at.error[0].value
+
+
+@pytest.mark.parametrize("stmt", [
+    "COPY health TO '{out}/leak.csv'",
+    "CREATE TABLE t AS SELECT 1",
+    "SELECT * FROM read_csv('/etc/passwd')",
+])
+def test_sql_page_refuses_writes_and_file_access(app, tmp_path, stmt):
+    at = _ok(_sql(app, stmt.format(out=tmp_path)))
+    assert len(at.error) == 1
+    # no result table: the only frame is the views reference in the expander
+    assert all("meaning" in d.value.columns for d in at.dataframe)
+    assert not (tmp_path / "leak.csv").exists()
+
+
+def test_sql_row_cap_truncates(app):
+    at = _ok(app().run())
+    at.switch_page("app_pages/sql.py").run()
+    at.number_input(key="sql_row_cap").set_value(7).run()
+    at.text_area(key="sql_text").set_value("SELECT * FROM windows").run()
+    at.button(key="sql_run").click().run()
+    _ok(at)
+    assert len(at.dataframe[0].value) == 7
+    assert any("truncated" in w.value for w in at.warning)
+
+
+# ------------------------------------------------------------------ reports
+def _write_report(folder: Path, week: str, units: int) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "report.html").write_text(f"<html><body><h1>Week {week}</h1></body></html>")
+    (folder / "actions.csv").write_text("unit_id,status,suggested_action\r\n"
+                                        "L1-U01,alert,inspect roller and preload\r\n")
+    (folder / "summary.json").write_text(json.dumps(
+        {"week": week, "units_total": units, "counts": {"normal": 10, "watch": 4, "alert": 2}}))
+
+
+def test_reports_page_lists_previews_and_builds(app, project, monkeypatch):
+    import fleetwatch.report
+
+    root, truth = project
+    _write_report(root / "reports" / "2026-W30", "2026-W30", len(truth.status_end))
+    calls = []
+
+    def fake_build_report(settings, week=None, **kw):
+        # the real build takes ~15 s of chart rendering; its own tests cover it
+        calls.append(week)
+        folder = settings.reports_path / week
+        _write_report(folder, week, 16)
+        return fleetwatch.report.ReportResult(
+            paths={"dir": folder, "html": folder / "report.html"}, week=week, summary={})
+
+    monkeypatch.setattr(fleetwatch.report, "build_report", fake_build_report)
+    at = _ok(app().run())
+    at.switch_page("app_pages/reports.py").run()
+    _ok(at)
+    assert at.selectbox(key="rep_week").options == ["2026-W30"]
+    metrics = {m.label: m.value for m in at.metric}
+    assert metrics[dash.status_label("alert")] == "2"
+    actions = at.dataframe[-1].value
+    assert list(actions["unit_id"]) == ["L1-U01"]
+    assert not at.get("iframe")
+    at.toggle(key="rep_preview").set_value(True).run()
+    assert "Week 2026-W30" in _ok(at).get("iframe")[0].proto.srcdoc
+    # build: the default week is the newest with data (the fleet's clock is in the past)
+    assert at.selectbox(key="rep_build_week").value == truth.report_week
+    at.button(key="rep_build").click().run()
+    _ok(at)
+    assert calls == [truth.report_week]
+    assert truth.report_week in at.success[0].value
+    assert at.selectbox(key="rep_week").options == [truth.report_week, "2026-W30"]
+
+
+# ------------------------------------------------------------------ the real pipeline
+def test_every_page_on_a_simulated_fleet(tmp_path_factory, monkeypatch):
+    """simulate -> ingest -> analyze, then every page renders what the lake holds."""
+    root, key = simulated_fleet(tmp_path_factory)
+    status = expected_status(root)
+    monkeypatch.setenv("FLEETWATCH_PROJECT", str(root))
+    at = _ok(AppTest.from_file(str(PACKAGED_APP), default_timeout=120).run())
+    metrics = {m.label: int(m.value) for m in at.metric}
+    assert metrics == {dash.status_label(s): list(status.values()).count(s)
+                       for s in ("alert", "watch", "normal")}
+    table = at.dataframe[0].value
+    assert set(table["unit_id"]) == set(key["units"])
+    assert table["last_data"].notna().all()        # from telemetry
+    slippy = next(u for u, t in key["units"].items() if t["events"]["gross_slip_samples"])
+    at.query_params["unit"] = slippy
+    at.switch_page(UNIT_PAGE).run()
+    _ok(at)
+    at.radio(key="unit_range_preset").set_value("All").run()
+    _ok(at)
+    assert len(at.get("vega_lite_chart")) >= 7
+    markers = next(d.value for d in at.dataframe if "source" in d.value.columns)
+    assert "gross_slip" in set(markers["kind"])
+    pages = [("events", "Events"), ("reports", "Reports"), ("sql", "SQL")]
+    if dash.advisor_available():
+        pages.insert(0, ("energy", "Energy"))
+    for page, title in pages:
+        at.switch_page(f"app_pages/{page}.py").run()
+        assert _ok(at).title[0].value == title
+    at.text_area(key="sql_text").set_value("SELECT count(DISTINCT unit_id) AS n FROM telemetry")
+    at.button(key="sql_run").click().run()
+    assert _ok(at).dataframe[0].value["n"].iloc[0] == len(key["units"])
+
+
+# ------------------------------------------------------------------ plumbing
+def test_thin_entry_runs_the_packaged_app(app):
+    at = _ok(app(THIN_APP).run())
+    assert at.title[0].value == "Fleet"
+    at.switch_page("../fleetwatch/dashboard_app/app_pages/sql.py").run()
+    assert _ok(at).title[0].value == "SQL"
+
+
+def test_pages_refresh_when_tables_change_and_ignore_the_writer_lock(app, project):
+    root, truth = project
+    from fleetwatch.lake import Lake
+
+    lake = Lake(root / "lake")
+    at = _ok(app().run())
+    before = {m.label: int(m.value) for m in at.metric}
+    health = lake.read("health")
+    try:
+        with lake.writer("test: analyze running"):
+            # a writer holds the lock: the dashboard still reads (its last snapshot)
+            _ok(at.run())
+            lake.overwrite("health", health.with_columns(status=pl.lit("alert")))
+            time.sleep(2.2)                      # versions are re-read every 2 s
+            at.run()
+        after = {m.label: int(m.value) for m in _ok(at).metric}
+        assert after[dash.status_label("alert")] == len(truth.status_end) != \
+            before[dash.status_label("alert")]
+    finally:
+        with lake.writer("test: restore"):
+            lake.overwrite("health", health)
+
+
+def test_empty_project_says_what_to_do(tmp_path, monkeypatch):
+    monkeypatch.setenv("FLEETWATCH_PROJECT", str(tmp_path))
+    at = _ok(AppTest.from_file(str(PACKAGED_APP), default_timeout=60).run())
+    assert any("fleetwatch ingest" in i.value for i in at.info)
+
+
+def test_serve_refuses_a_busy_port(project):
+    import socket
+
+    root, _ = project
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        s.listen()
+        port = s.getsockname()[1]
+        with pytest.raises(UsageError, match=f"127.0.0.1:{port}"):
+            dash.serve_dashboard(load_settings(root), port=port, block=False)
+
+
+def test_cli_dashboard_on_a_busy_port_says_so(project):
+    import socket
+    import subprocess
+    import sys
+
+    root, _ = project
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        s.listen()
+        port = s.getsockname()[1]
+        r = subprocess.run([sys.executable, "-m", "fleetwatch", "--project", str(root),
+                            "dashboard", "--port", str(port)],
+                           capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2
+    assert r.stderr.splitlines()[0] == (f"Error: cannot listen on 127.0.0.1:{port}: the "
+                                        "address is in use or not available on this machine")
+    assert r.stderr.splitlines()[1].startswith("Hint: Pick another one with --port")
+
+
+def test_server_command_is_local_headless_and_quiet(project):
+    root, _ = project
+    s = load_settings(root)
+    cmd = dash.dashboard_command(s.dashboard_host, s.dashboard_port)
+    opts = dict(zip(cmd[5::2], cmd[6::2]))
+    assert cmd[3:5] == ["run", str(dash.app_path())]
+    assert opts["--server.address"] == "127.0.0.1"
+    assert opts["--server.port"] == "8501"
+    assert opts["--server.headless"] == "true"
+    assert opts["--browser.gatherUsageStats"] == "false"
+
+
+def test_a_plain_install_ships_the_app():
+    """``pip install .`` (non-editable) installs the packages that setuptools finds with the
+    pyproject's [tool.setuptools.packages.find]; every file of the app must be in one."""
+    import tomllib
+
+    from setuptools import find_packages
+
+    cfg = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))
+    find = cfg["tool"]["setuptools"]["packages"]["find"]
+    packages = set(find_packages(where=str(ROOT), include=find.get("include", ["*"]),
+                                 exclude=find.get("exclude", ())))
+    app_dir = dash.app_path().parent
+    files = sorted(app_dir.rglob("*.py"))
+    assert {"app.py", "ui.py", "fleet.py", "unit.py", "events.py", "sql.py",
+            "reports.py"} <= {f.name for f in files}
+    assert not (app_dir / "pages").exists()   # Streamlit would list a pages/ folder too
+    for f in files:
+        pkg = ".".join(f.parent.relative_to(ROOT).parts)
+        assert pkg in packages, f"{f} is not in an installed package"
