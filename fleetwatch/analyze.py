@@ -1,0 +1,533 @@
+"""Analyze: telemetry -> windows, events, unit_days and the fit tables, then the health models.
+
+``analyze(settings, full=False, progress=None)`` takes the lake's writer lock, runs the SQL
+models of ``fleetwatch/sql`` in DuckDB over the lake's views and the per-unit fits of
+``fleetwatch.fits``, writes the derived tables (each write one atomic table commit: readers
+see the old or the new version), and finally calls ``fleetwatch.models.run_models`` when
+that stage is installed.
+
+Incremental by default. A small state file in the lake (``_analyze_state.json``) records
+which telemetry batches, which wear resets and which settings/SQL the derived tables
+reflect. The next run recomputes from the Monday on or before the day before the earliest
+new sample (or the unit's previous sample, so a pause that ends in new data is whole; or the
+start of a reference period that the new data falls in, because everything after it leans
+on that reference) up to the end of the data. Whole ISO weeks, so the weekly fits of the
+affected weeks see all their samples. A change of the analyze settings or of the SQL files,
+a missing derived table or ``full=True`` rebuilds everything.
+
+Memory: the work runs in chunks of whole weeks (about ``CHUNK_ROWS`` telemetry rows each)
+on a DuckDB connection with a memory limit (``DUCKDB_MEMORY_LIMIT``) and a spill folder;
+per-sample data never leaves DuckDB; only window-level rows (steady windows for the creep
+fits) and small aggregates come into Python.
+"""
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import json
+import os
+import shutil
+import tempfile
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Optional
+
+import polars as pl
+
+from . import fits, physics
+from .errors import ConfigError, LakeError
+from .schema import TABLES
+from .sqlmodels import load_models, run_model
+
+__all__ = ["analyze", "AnalyzeReport", "AnalysisPlan", "run_analysis", "plan_analysis",
+           "ANALYZE_SETTINGS", "DERIVED", "CHUNK_ROWS", "STATE_FILE"]
+
+UTC = dt.timezone.utc
+
+#: Tables analyze writes (the fit tables included).
+DERIVED = ("windows", "events", "unit_days", "motor_fits", "creep_fits", "efficiency")
+#: Telemetry rows per processing chunk (whole ISO weeks; bounds memory).
+CHUNK_ROWS = 6_000_000
+#: DuckDB memory limit of the analyze connection (it spills to a temp folder beyond).
+DUCKDB_MEMORY_LIMIT = "3GB"
+#: ... and while the derived tables are handed to the lake (Arrow copies live then).
+DUCKDB_WRITE_MEMORY_LIMIT = "1GB"
+#: State file inside the lake folder.
+STATE_FILE = "_analyze_state.json"
+#: Settings whose change invalidates every derived row (a full rebuild follows).
+ANALYZE_SETTINGS = ("window_min", "sample_period_s", "steady_n_in_min_rpm", "steady_settle_s",
+                    "gross_slip_limit", "gross_slip_min_samples", "stall_i_a",
+                    "stall_n_in_max_rpm", "stall_min_s", "flatline_min_s", "gap_min_s",
+                    "clock_jump_s", "ratio_bin_width", "reference_days", "load_ref_nm",
+                    "motor_i0_a")
+_EPOCH_MONDAY = dt.date(1970, 1, 5)
+
+
+@dataclass
+class AnalyzeReport:
+    """What one analyze run did.
+
+    ``tables``: rows written per table (rows of the recomputed range for an incremental
+    run); ``days_recomputed``: UTC days whose derived rows were rebuilt; ``from_day`` /
+    ``to_day``: the range (``to_day`` exclusive); ``full``: a full rebuild; ``reason``:
+    why this range; ``models``: what the health stage did; ``elapsed_s``: wall time.
+    """
+
+    tables: dict[str, int] = field(default_factory=dict)
+    days_recomputed: int = 0
+    units: int = 0
+    from_day: Optional[dt.date] = None
+    to_day: Optional[dt.date] = None
+    full: bool = False
+    reason: str = ""
+    models: str = ""
+    elapsed_s: float = 0.0
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"tables": dict(self.tables), "days_recomputed": self.days_recomputed,
+                "units": self.units,
+                "from_day": self.from_day.isoformat() if self.from_day else None,
+                "to_day": self.to_day.isoformat() if self.to_day else None,
+                "full": self.full, "reason": self.reason, "models": self.models,
+                "elapsed_s": round(self.elapsed_s, 3)}
+
+
+@dataclass
+class AnalysisPlan:
+    """The range one run recomputes: [from_day, to_day), whole ISO weeks."""
+
+    full: bool
+    from_day: Optional[dt.date]
+    to_day: Optional[dt.date]
+    reason: str
+    batches: list[str]
+    resets: list[list[str]]
+    fingerprint: str
+    chunks: list[tuple[dt.date, dt.date]] = field(default_factory=list)
+
+    @property
+    def empty(self) -> bool:
+        return self.from_day is None
+
+
+# ---------------------------------------------------------------- small helpers
+def _monday(d: dt.date) -> dt.date:
+    return d - dt.timedelta(days=d.weekday())
+
+
+def _ts(d: dt.date) -> dt.datetime:
+    return dt.datetime(d.year, d.month, d.day, tzinfo=UTC)
+
+
+def _has_view(con, name: str) -> bool:
+    q = ("SELECT count(*) FROM duckdb_views() WHERE view_name = $n AND database_name IN "
+         "('memory', 'temp') UNION ALL SELECT count(*) FROM duckdb_tables() "
+         "WHERE table_name = $n AND database_name IN ('memory', 'temp')")
+    return sum(r[0] for r in con.execute(q, {"n": name}).fetchall()) > 0
+
+
+def fingerprint(settings: Any) -> str:
+    """Hash of the analyze settings and the SQL model files: a change forces a rebuild."""
+    h = hashlib.sha256()
+    for name in ANALYZE_SETTINGS:
+        h.update(f"{name}={settings[name]!r};".encode())
+    for m in load_models():
+        h.update(m.sql.encode())
+    h.update(Path(fits.__file__).read_bytes())
+    return h.hexdigest()[:16]
+
+
+def _check_settings(settings: Any) -> None:
+    wm = settings["window_min"]
+    if wm <= 0 or 1440 % wm:
+        raise ConfigError(f"window_min = {wm} does not divide a day (1440 min)",
+                          hint="Use a divisor of 1440, e.g. 5, 10, 15, 30 or 60.")
+    if settings["sample_period_s"] <= 0:
+        raise ConfigError("sample_period_s must be positive",
+                          hint="Set it to the logging period of the drives, e.g. 60.")
+    if settings["ratio_bin_width"] <= 0:
+        raise ConfigError("ratio_bin_width must be positive", hint="E.g. 0.5.")
+
+
+def _context_s(settings: Any) -> float:
+    """Context read on both sides of a chunk: settle time, flatlines, pauses (>= 1 day)."""
+    return float(max(86400.0, 2 * settings["flatline_min_s"], 2 * settings["steady_settle_s"],
+                     2 * settings["gap_min_s"]))
+
+
+# ---------------------------------------------------------------- planning
+def plan_analysis(con, settings: Any, state: dict | None, full: bool,
+                  have_derived: bool) -> AnalysisPlan:
+    """Decide what to recompute from the lake views on ``con`` and the previous state."""
+    fp = fingerprint(settings)
+    if not _has_view(con, "telemetry"):
+        raise LakeError("the lake has no telemetry yet",
+                        hint="Ingest drive logs first: fleetwatch ingest --mapping MAP LOGS...")
+    span = con.execute("SELECT min(day), max(day), count(*) FROM telemetry").fetchall()[0]
+    if span[2] == 0:
+        raise LakeError("the telemetry table is empty",
+                        hint="Ingest drive logs first: fleetwatch ingest --mapping MAP LOGS...")
+    first_day, last_day = span[0], span[1]
+    end_day = _monday(last_day) + dt.timedelta(days=7)
+    batches = sorted(r[0] for r in con.execute(
+        "SELECT DISTINCT batch_id FROM telemetry").fetchall())
+    resets: list[list[str]] = []
+    if _has_view(con, "maintenance"):
+        resets = [[r[0], r[1].astimezone(UTC).isoformat()] for r in con.execute(
+            "SELECT unit_id, ts FROM maintenance WHERE resets_wear ORDER BY unit_id, ts"
+        ).fetchall()]
+
+    def whole(reason: str) -> AnalysisPlan:
+        return AnalysisPlan(True, _monday(first_day), end_day, reason, batches, resets, fp)
+
+    if full:
+        return whole("full rebuild requested")
+    if not state or not have_derived:
+        return whole("first analyze of this lake")
+    if state.get("fingerprint") != fp:
+        return whole("analyze settings or SQL models changed since the last run")
+
+    new_batches = sorted(set(batches) - set(state.get("batches", [])))
+    gone = set(state.get("batches", [])) - set(batches)
+    if gone:
+        return whole(f"{len(gone)} analyzed batch(es) no longer in telemetry")
+    starts: list[dt.datetime] = []
+    if new_batches:
+        con.execute("CREATE OR REPLACE TEMP TABLE _new_batches (batch_id VARCHAR)")
+        con.executemany("INSERT INTO _new_batches VALUES (?)", [[b] for b in new_batches])
+        rows = con.execute("""
+            WITH nb AS (
+                SELECT unit_id, min(ts) AS first_new, min(day) AS first_new_day
+                FROM telemetry WHERE batch_id IN (SELECT batch_id FROM _new_batches)
+                GROUP BY unit_id)
+            SELECT nb.unit_id, nb.first_new,
+                   (SELECT max(t.ts) FROM telemetry AS t
+                     WHERE t.unit_id = nb.unit_id AND t.ts < nb.first_new
+                       AND t.day >= nb.first_new_day - 31 AND t.day <= nb.first_new_day)
+                       AS prev_ts
+            FROM nb""").fetchall()
+        con.execute("DROP TABLE _new_batches")
+        for unit_id, first_new, prev_ts in rows:
+            starts.append(prev_ts if prev_ts is not None else first_new)
+        # new data inside a reference period: everything after that reference leans on it
+        first = dict(con.execute("SELECT unit_id, min(ts) FROM telemetry GROUP BY 1").fetchall())
+        ref_days = dt.timedelta(days=int(settings["reference_days"]))
+        seg_starts: dict[str, list[dt.datetime]] = {}
+        for u, t in resets:
+            seg_starts.setdefault(u, []).append(dt.datetime.fromisoformat(t))
+        for unit_id, first_new, _prev in rows:
+            cands = [first[unit_id]] + [s for s in seg_starts.get(unit_id, [])
+                                        if s > first[unit_id]]
+            ref_start = max((s for s in cands if s <= first_new), default=first[unit_id])
+            if first_new < ref_start + ref_days:
+                starts.append(ref_start)
+    old_resets = {tuple(r) for r in state.get("resets", [])}
+    for u, t in resets:
+        if (u, t) not in old_resets:
+            starts.append(dt.datetime.fromisoformat(t))
+    for u, t in old_resets - {tuple(r) for r in resets}:
+        starts.append(dt.datetime.fromisoformat(t))
+    if not starts:
+        return AnalysisPlan(False, None, None, "no new telemetry or maintenance since the "
+                            "last analyze", batches, resets, fp)
+    start = min(starts).astimezone(UTC).date() - dt.timedelta(days=1)
+    from_day = max(_monday(start), _monday(first_day))
+    return AnalysisPlan(False, from_day, end_day,
+                        f"{len(new_batches)} new batch(es) since the last analyze",
+                        batches, resets, fp)
+
+
+def _chunks(con, from_day: dt.date, to_day: dt.date) -> list[tuple[dt.date, dt.date]]:
+    """Consecutive whole-week chunks of about CHUNK_ROWS telemetry rows."""
+    per_week = dict(con.execute(
+        "SELECT date_trunc('week', day)::DATE AS wk, count(*) FROM telemetry "
+        "WHERE day >= $a AND day < $b GROUP BY 1", {"a": from_day, "b": to_day}).fetchall())
+    out: list[tuple[dt.date, dt.date]] = []
+    a = from_day
+    rows = 0
+    wk = from_day
+    while wk < to_day:
+        rows += per_week.get(wk, 0)
+        nxt = wk + dt.timedelta(days=7)
+        if rows >= CHUNK_ROWS or nxt >= to_day:
+            out.append((a, nxt))
+            a, rows = nxt, 0
+        wk = nxt
+    return out
+
+
+# ---------------------------------------------------------------- the work
+def _schema_select(name: str, source: str, where: str = "") -> str:
+    """SELECT of exactly the contract columns of table ``name`` with their types (the lake
+    sorts by the table's key when it writes)."""
+    cols = ", ".join(f"CAST({c.name} AS {c.type}) AS {c.name}" for c in TABLES[name].columns)
+    return f"SELECT {cols} FROM {source} {where}"
+
+
+def run_analysis(con, settings: Any, plan: AnalysisPlan,
+                 write: Callable[[str, Any, Optional[dt.date]], int],
+                 progress: Optional[Callable[[int, Optional[int]], None]] = None,
+                 prev=None, work_dir: str | os.PathLike | None = None) -> dict[str, int]:
+    """Compute the derived tables for ``plan`` on ``con`` and hand each to ``write``.
+
+    ``con``: DuckDB connection with views ``telemetry`` and ``maintenance`` (optional) and
+    no other names the models use (they create their tables on it; they spill to a
+    temporary folder beyond the memory limit and are dropped at the end).
+    ``prev``: connection with the previous ``windows``, ``events``, ``motor_fits`` and
+    ``creep_fits`` (needed for an incremental plan: reference windows, old flatlines and the
+    weeks before the range).
+    ``write(name, arrow_table, from_day)`` stores one table: ``from_day`` None means replace
+    the whole table, else replace its rows with ``day >= from_day``. Returns rows written
+    per table.
+    """
+    _check_settings(settings)
+    models = {m.name: m for m in load_models()}
+    tmp = tempfile.mkdtemp(prefix="fleetwatch-analyze-", dir=work_dir)
+    try:
+        return _run(con, prev, settings, plan, write, progress, models, tmp)
+    finally:
+        for name in ("samples", "motor_sums", "windows", "window_power", "events",
+                     "day_stats", "efficiency", "unit_days"):
+            try:
+                con.execute(f"DROP TABLE IF EXISTS {name}")
+            except Exception:  # noqa: BLE001 - best effort; the spill folder goes below
+                pass
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
+         ) -> dict[str, int]:
+    con.execute("SET TimeZone = 'UTC'")
+    con.execute(f"SET memory_limit = '{DUCKDB_MEMORY_LIMIT}'")
+    con.execute(f"SET temp_directory = '{Path(tmp) / 'spill'}'")
+    con.execute("SET preserve_insertion_order = false")
+
+    chunks = _chunks(con, plan.from_day, plan.to_day)
+    plan.chunks = chunks
+    total = len(chunks) + 4
+    step = 0
+
+    def tick() -> None:
+        nonlocal step
+        step += 1
+        if progress:
+            progress(step, total)
+
+    full = plan.full
+    first_ts = pl.from_arrow(con.sql(
+        "SELECT unit_id, min(ts) AS first_ts FROM telemetry GROUP BY unit_id").to_arrow_table())
+    first_ts = first_ts.with_columns(pl.col("first_ts").dt.convert_time_zone("UTC")
+                                     .dt.cast_time_unit("us"))
+    maint = None
+    if _has_view(con, "maintenance"):
+        maint = pl.from_arrow(con.sql(
+            "SELECT unit_id, ts, resets_wear FROM maintenance").to_arrow_table())
+        maint = maint.with_columns(pl.col("ts").dt.convert_time_zone("UTC")
+                                   .dt.cast_time_unit("us"))
+    segments = fits.unit_segments(first_ts, maint, int(settings["reference_days"]))
+    old_motor = None
+    if not full and prev is not None and _has_view(prev, "motor_fits"):
+        old_motor = pl.from_arrow(prev.sql("SELECT * FROM motor_fits").to_arrow_table())
+
+    ctx = _context_s(settings)
+    motor_weeks: list[pl.DataFrame] = []
+    for k, (a, b) in enumerate(chunks):
+        rt = {"from_ts": _ts(a), "to_ts": _ts(b), "context_s": ctx,
+              "alpha_per_k": physics.ALPHA_COPPER_PER_K}
+        run_model(con, models["samples"], settings, rt)
+        run_model(con, models["motor_sums"], settings, rt)
+        sums = pl.from_arrow(con.sql("SELECT * FROM motor_sums").to_arrow_table())
+        week_fits = fits.solve_motor_sums(sums)
+        motor_weeks.append(week_fits.select("unit_id", "week_start", "n", "r_ohm", "k_e",
+                                            "resid_std_v"))
+        mc = fits.motor_constants_for_load(week_fits, old_motor, settings["motor_i0_a"])
+        con.register("motor_constants", mc.to_arrow())
+        first = k == 0
+        for name in ("windows", "window_power", "events", "day_stats"):
+            run_model(con, models[name], settings, rt, replace=first)
+        con.execute("DROP TABLE samples")
+        con.execute("DROP TABLE motor_sums")
+        tick()
+
+    from_day = None if full else plan.from_day
+    from_ts = _ts(plan.from_day)
+    written: dict[str, int] = {}
+
+    # -- motor fits: the new weeks, the untouched old weeks, drift against the reference
+    new_motor = (pl.concat(motor_weeks) if motor_weeks else
+                 pl.DataFrame(schema={"unit_id": pl.String, "week_start": pl.Date,
+                                      "n": pl.Int64, "r_ohm": pl.Float64, "k_e": pl.Float64,
+                                      "resid_std_v": pl.Float64}))
+    if old_motor is not None and old_motor.height:
+        keep = old_motor.filter(pl.col("week_start") < plan.from_day).select(
+            new_motor.columns).cast(new_motor.schema)
+        new_motor = pl.concat([keep, new_motor])
+    motor_table = fits.motor_fits_with_drift(new_motor, first_ts, int(settings["reference_days"]))
+    tick()
+
+    # -- creep: windows of the range plus older reference windows from the lake
+    wcols = ("unit_id, window_start, day, steady_samples, slip_mean, load_mean, load_source, "
+             "ratio_cmd_mean, n_out_mean, p_in_mean")
+    win_new = pl.from_arrow(con.sql(
+        f"SELECT {wcols} FROM windows WHERE steady_samples >= 2").to_arrow_table())
+    win_ref_old = None
+    if not full and prev is not None and _has_view(prev, "windows"):
+        ref = segments.select("unit_id", "ref_start", "ref_end")
+        prev.register("_ref_periods", ref.to_arrow())
+        win_ref_old = pl.from_arrow(prev.sql(
+            f"SELECT {', '.join('w.' + c.strip() for c in wcols.split(','))} "
+            "FROM windows AS w JOIN _ref_periods AS r "
+            "ON w.unit_id = r.unit_id AND w.window_start >= r.ref_start "
+            "AND w.window_start < r.ref_end "
+            "WHERE w.steady_samples >= 2 AND w.window_start < $f",
+            params={"f": from_ts}).to_arrow_table())
+    ref_windows = win_new if win_ref_old is None else pl.concat(
+        [win_ref_old.cast(win_new.schema), win_new])
+    ref_windows = ref_windows.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
+                                           .dt.cast_time_unit("us"))
+    win_new = win_new.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
+                                   .dt.cast_time_unit("us"))
+    flat_sql = "SELECT unit_id, start_ts, end_ts, signal FROM events WHERE kind = 'flatline'"
+    flat = pl.from_arrow(con.sql(flat_sql).to_arrow_table())
+    if not full and prev is not None and _has_view(prev, "events"):
+        old_flat = pl.from_arrow(prev.sql(flat_sql + " AND day < $d", params={
+            "d": plan.from_day}).to_arrow_table())
+        flat = pl.concat([old_flat.cast(flat.schema), flat])
+    cw_new = fits.drop_flatlined(fits.creep_windows(win_new, settings), flat,
+                                 settings["window_min"])
+    creep_new = fits.creep_fits_weekly(cw_new, segments)
+    if not full and prev is not None and _has_view(prev, "creep_fits"):
+        old = pl.from_arrow(prev.sql("SELECT * FROM creep_fits "
+                                    "WHERE week_start < $f", params={"f": plan.from_day}
+                                    ).to_arrow_table())
+        creep_table = pl.concat([old.select(creep_new.columns).cast(creep_new.schema),
+                                 creep_new])
+    else:
+        creep_table = creep_new
+    ref_bins = fits.creep_reference_bins(
+        fits.drop_flatlined(fits.creep_windows(ref_windows, settings), flat,
+                            settings["window_min"]), segments)
+    daily = fits.creep_daily(cw_new, segments, ref_bins, settings["load_ref_nm"])
+    con.register("creep_daily", daily.to_arrow())
+    tick()
+
+    # -- efficiency and the normal-behaviour power model
+    pm = fits.power_models(ref_windows, segments)
+    con.register("power_models", pm.to_arrow())
+    run_model(con, models["efficiency"], settings, {})
+    run_model(con, models["unit_days"], settings, {})
+    tick()
+
+    # -- write (each table one atomic commit); DuckDB gives back its memory first, so its
+    # buffers and the Arrow copies of the lake's write do not peak together
+    con.execute(f"SET memory_limit = '{DUCKDB_WRITE_MEMORY_LIMIT}'")
+    for name, src, where in (
+            ("windows", "windows", ""),
+            ("events", "events", "" if full else "WHERE day >= $from_day"),
+            ("efficiency", "efficiency", ""),
+            ("unit_days", "unit_days", "")):
+        sql = _schema_select(name, src, where)
+        params = {} if full or not where else {"from_day": plan.from_day}
+        tbl = con.sql(sql, params=params or None).to_arrow_table()
+        con.execute(f"DROP TABLE {src}")        # free DuckDB's copy before the lake's write
+        written[name] = write(name, tbl, from_day)
+        del tbl
+    for name, df in (("motor_fits", motor_table), ("creep_fits", creep_table)):
+        cols = [c.name for c in TABLES[name].columns]
+        written[name] = write(name, df.select(cols).sort(list(TABLES[name].key)).to_arrow(),
+                              None)
+    tick()
+    return written
+
+
+# ---------------------------------------------------------------- state and the lake
+def _state_path(lake) -> Path:
+    return Path(lake.path) / "_fleetwatch" / STATE_FILE
+
+
+def _read_state(lake) -> dict | None:
+    try:
+        return json.loads(_state_path(lake).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        return None
+    except (OSError, ValueError):
+        return None   # unreadable state: rebuild everything
+
+
+def _write_state(lake, plan: AnalysisPlan) -> None:
+    p = _state_path(lake)
+    p.parent.mkdir(parents=True, exist_ok=True)
+    tmp = p.with_name(p.name + ".tmp")
+    tmp.write_text(json.dumps({
+        "fingerprint": plan.fingerprint, "batches": plan.batches, "resets": plan.resets,
+        "from_day": plan.from_day.isoformat() if plan.from_day else None,
+        "finished_at": dt.datetime.now(UTC).isoformat(),
+    }, indent=1), encoding="utf-8")
+    os.replace(tmp, p)
+
+
+def _run_health(lake, settings) -> str:
+    """Call fleetwatch.models.run_models when that stage is installed."""
+    try:
+        from . import models as health_models
+    except ModuleNotFoundError as exc:
+        if exc.name and exc.name.startswith("fleetwatch.models"):
+            return "health models not installed"
+        raise
+    run = getattr(health_models, "run_models", None)
+    if run is None:
+        return "health models not installed"
+    res = run(lake, settings)
+    counts = res.get("status_counts") if isinstance(res, dict) else None
+    if counts:
+        return "health models ran (" + ", ".join(f"{k} {v}" for k, v in counts.items()) + ")"
+    return "health models ran"
+
+
+def analyze(settings: Any, full: bool = False,
+            progress: Optional[Callable[[int, Optional[int]], None]] = None) -> AnalyzeReport:
+    """Compute the derived tables of the lake in ``settings.lake_path``, then the health stage.
+
+    ``full``: rebuild every derived row (default: only the days with new telemetry, see
+    the module docstring). ``progress``: optional callable ``(done, total)`` per step.
+    Returns an AnalyzeReport. Raises LakeError when the lake has no telemetry,
+    LockHeldError when another writer holds the lake, ConfigError for unusable settings.
+    """
+    from .lake import Lake
+
+    t0 = time.perf_counter()
+    _check_settings(settings)
+    lake = Lake.from_settings(settings)
+    report = AnalyzeReport()
+    with lake.writer("analyze"):
+        lake.recover()     # rows of an ingest batch killed half way must not be analyzed
+        con = lake.connect(["telemetry", "maintenance"])
+        prev = lake.connect(["windows", "events", "motor_fits", "creep_fits"])
+        try:
+            have = all(lake.has_table(t) for t in DERIVED)
+            plan = plan_analysis(con, settings, _read_state(lake), full, have)
+            report.full, report.reason = plan.full, plan.reason
+            if not plan.empty:
+                def write(name: str, data: Any, from_day: Optional[dt.date]) -> int:
+                    if from_day is None:
+                        lake.overwrite(name, data)
+                    else:
+                        lake.replace_where(name, data, f"day >= '{from_day.isoformat()}'")
+                    return data.num_rows
+
+                report.tables = run_analysis(con, settings, plan, write, progress, prev)
+                report.from_day, report.to_day = plan.from_day, plan.to_day
+                last = con.execute("SELECT max(day) FROM telemetry").fetchall()[0][0]
+                end = min(plan.to_day, last + dt.timedelta(days=1))
+                report.days_recomputed = max(0, (end - plan.from_day).days)
+                report.units = con.execute(
+                    "SELECT count(DISTINCT unit_id) FROM telemetry WHERE day >= $d",
+                    {"d": plan.from_day}).fetchall()[0][0]
+                _write_state(lake, plan)
+        finally:
+            con.close()
+            prev.close()
+        report.models = _run_health(lake, settings)
+    report.elapsed_s = time.perf_counter() - t0
+    return report

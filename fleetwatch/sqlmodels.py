@@ -1,0 +1,355 @@
+"""The SQL models in ``fleetwatch/sql/``: load, check and run them.
+
+Each ``.sql`` file is one model: plain DuckDB SQL an engineer can paste into a shell, with
+parameters written as DuckDB named parameters (``$window_min``). The file opens with a
+header comment block::
+
+    -- name: windows
+    -- Free text: what the model computes and why (any number of lines).
+    -- reads: samples, motor_constants
+    -- param: window_min  min  Length of the aggregation interval.
+    -- param: from_ts  UTC  runtime: start of the recompute range (inclusive).
+    -- column: unit_id  -  Drive.
+
+``reads`` names the views the body reads (base tables, other models, or views that
+``analyze`` registers from Python); the loader orders the models by it. A ``param`` is
+either a setting of ``fleetwatch.config.SETTINGS`` (its unit must match the registry) or a
+*runtime* parameter that the caller supplies (its help starts with ``runtime:``).
+
+``load_models()`` checks every file when it loads and raises ``SqlModelError`` pointing at
+``file:line`` when a ``$name`` is used but not declared, declared but not used, unknown to
+the settings registry, declared with the wrong unit, or when the body does not parse.
+"""
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+from functools import lru_cache
+from pathlib import Path
+from typing import Any, Iterable, Mapping
+
+from .config import SETTINGS
+from .errors import ModelError
+
+__all__ = ["SqlModel", "SqlParam", "SqlColumn", "SqlModelError", "SQL_DIR", "load_models",
+           "model", "model_params", "run_model"]
+
+SQL_DIR = Path(__file__).with_name("sql")
+
+_HEADER_KEYS = ("name", "reads", "param", "column")
+_KEY_RE = re.compile(r"^--\s*(name|reads|param|column)\s*:\s*(.*)$")
+_PARAM_USE_RE = re.compile(r"\$([A-Za-z_][A-Za-z0-9_]*)")
+
+
+class SqlModelError(ModelError):
+    """A SQL model file is malformed or inconsistent (message starts with ``file:line``)."""
+
+
+@dataclass(frozen=True)
+class SqlParam:
+    name: str
+    unit: str
+    help: str
+    line: int
+    runtime: bool
+
+
+@dataclass(frozen=True)
+class SqlColumn:
+    name: str
+    unit: str
+    help: str
+
+
+@dataclass(frozen=True)
+class SqlModel:
+    """One model file: ``sql`` is the whole file text (header comments included)."""
+
+    name: str
+    description: str
+    reads: tuple[str, ...]
+    params: tuple[SqlParam, ...]
+    columns: tuple[SqlColumn, ...]
+    sql: str
+    path: Path
+    body_line: int = field(default=1)
+
+    @property
+    def param_names(self) -> list[str]:
+        return [p.name for p in self.params]
+
+    @property
+    def setting_params(self) -> list[str]:
+        return [p.name for p in self.params if not p.runtime]
+
+    @property
+    def runtime_params(self) -> list[str]:
+        return [p.name for p in self.params if p.runtime]
+
+    def where(self, line: int) -> str:
+        return f"{self.path}:{line}"
+
+
+def _err(path: Path, line: int, msg: str, hint: str | None = None) -> SqlModelError:
+    return SqlModelError(f"{path}:{line}: {msg}", hint=hint or
+                         "Fix the header comment block of the .sql file (see "
+                         "fleetwatch/sqlmodels.py for its format).")
+
+
+def _strip_comments_and_strings(line: str, in_block: bool) -> tuple[str, bool]:
+    """The code of one SQL line with comments and string literals blanked out."""
+    out, i, n = [], 0, len(line)
+    while i < n:
+        if in_block:
+            j = line.find("*/", i)
+            if j < 0:
+                return "".join(out), True
+            i, in_block = j + 2, False
+            continue
+        c = line[i]
+        if line.startswith("--", i):
+            break
+        if line.startswith("/*", i):
+            in_block, i = True, i + 2
+            continue
+        if c in ("'", '"'):
+            j = i + 1
+            while j < n:
+                if line[j] == c:
+                    if j + 1 < n and line[j + 1] == c:  # doubled quote inside the literal
+                        j += 2
+                        continue
+                    break
+                j += 1
+            out.append(" " * (j + 1 - i))
+            i = j + 1
+            continue
+        out.append(c)
+        i += 1
+    return "".join(out), in_block
+
+
+def _parse_file(path: Path) -> SqlModel:
+    text = path.read_text(encoding="utf-8")
+    lines = text.splitlines()
+    name = None
+    desc: list[str] = []
+    reads: list[str] = []
+    params: list[SqlParam] = []
+    columns: list[SqlColumn] = []
+    body_line = len(lines) + 1
+    settings = {s.name: s for s in SETTINGS}
+    for no, raw in enumerate(lines, start=1):
+        s = raw.strip()
+        if not s.startswith("--"):
+            if s == "":
+                continue
+            body_line = no
+            break
+        m = _KEY_RE.match(s)
+        if not m:
+            txt = s[2:].strip()
+            if txt:
+                desc.append(txt)
+            continue
+        key, val = m.group(1), m.group(2).strip()
+        if key == "name":
+            name = val
+            if name != path.stem:
+                raise _err(path, no, f"model name '{name}' differs from the file name "
+                           f"'{path.stem}'", hint="Rename one so they match.")
+        elif key == "reads":
+            reads += [r.strip() for r in val.split(",") if r.strip()]
+        elif key == "param":
+            parts = val.split(None, 2)
+            if len(parts) < 3:
+                raise _err(path, no, f"param line needs 'name unit help', got '{val}'")
+            pname, unit, help_ = parts
+            runtime = help_.lower().startswith("runtime:")
+            if not runtime:
+                st = settings.get(pname)
+                if st is None:
+                    raise _err(path, no, f"parameter ${pname} is not a setting of the "
+                               "registry (fleetwatch/config.py SETTINGS)",
+                               hint="Use a setting's exact name, add the setting to the "
+                               "registry, or mark a caller-supplied value with "
+                               "'runtime:' at the start of its help.")
+                if st.unit != unit:
+                    raise _err(path, no, f"parameter ${pname} declared in '{unit}' but the "
+                               f"setting is in '{st.unit}'",
+                               hint=f"Declare it as '-- param: {pname}  {st.unit}  ...'.")
+            if any(p.name == pname for p in params):
+                raise _err(path, no, f"parameter ${pname} declared twice")
+            params.append(SqlParam(pname, unit, help_, no, runtime))
+        elif key == "column":
+            parts = val.split(None, 2)
+            if len(parts) < 3:
+                raise _err(path, no, f"column line needs 'name unit help', got '{val}'")
+            columns.append(SqlColumn(*parts))
+    if name is None:
+        raise _err(path, 1, "header has no '-- name: <model>' line")
+    if not desc:
+        raise _err(path, 1, "header has no description (free comment lines saying what the "
+                   "model computes and why)")
+    if body_line > len(lines):
+        raise _err(path, len(lines) or 1, "file has a header but no SQL body")
+
+    # Parameters used in the body, with the first line of use (comments/strings ignored).
+    used: dict[str, int] = {}
+    in_block = False
+    for no in range(body_line, len(lines) + 1):
+        code, in_block = _strip_comments_and_strings(lines[no - 1], in_block)
+        for m in _PARAM_USE_RE.finditer(code):
+            used.setdefault(m.group(1), no)
+    declared = {p.name: p for p in params}
+    for pname, no in used.items():
+        if pname not in declared:
+            raise _err(path, no, f"parameter ${pname} is used but not declared in the header",
+                       hint=f"Add '-- param: {pname}  <unit>  <help>' to the header.")
+    for p in params:
+        if p.name not in used:
+            raise _err(path, p.line, f"parameter ${p.name} is declared but never used in "
+                       "the body", hint="Remove the param line or use the parameter.")
+    return SqlModel(name=name, description=" ".join(desc), reads=tuple(reads),
+                    params=tuple(params), columns=tuple(columns), sql=text, path=path,
+                    body_line=body_line)
+
+
+def _check_parses(m: SqlModel) -> None:
+    import duckdb
+
+    con = duckdb.connect()
+    try:
+        stmts = con.extract_statements(m.sql)
+    except duckdb.ParserException as exc:
+        msg = str(exc)
+        line = m.body_line
+        hit = re.search(r"LINE (\d+):", msg)
+        if hit:
+            line = int(hit.group(1))
+        first = msg.splitlines()[0] if msg else "parse error"
+        raise _err(m.path, line, f"SQL does not parse: {first}",
+                   hint="Run the file in a DuckDB shell to see the whole message.") from None
+    finally:
+        con.close()
+    if len(stmts) != 1:
+        raise _err(m.path, m.body_line, f"a model holds exactly one statement, found "
+                   f"{len(stmts)}")
+    names = set(stmts[0].named_parameters)
+    if names != set(m.param_names):  # the regex scan and DuckDB's parser must agree
+        raise _err(m.path, m.body_line, f"DuckDB sees parameters {sorted(names)} but the "
+                   f"header declares {sorted(m.param_names)}")
+
+
+def _order(models: list[SqlModel]) -> list[SqlModel]:
+    """Topological order by ``reads`` (ties keep file-name order)."""
+    by_name = {m.name: m for m in models}
+    done: list[SqlModel] = []
+    state: dict[str, int] = {}
+
+    def visit(m: SqlModel, chain: tuple[str, ...]) -> None:
+        if state.get(m.name) == 2:
+            return
+        if state.get(m.name) == 1:
+            raise _err(m.path, 1, "models read each other in a cycle: "
+                       + " -> ".join(chain + (m.name,)))
+        state[m.name] = 1
+        for r in m.reads:
+            if r in by_name:
+                visit(by_name[r], chain + (m.name,))
+        state[m.name] = 2
+        done.append(m)
+
+    for m in sorted(models, key=lambda x: x.name):
+        visit(m, ())
+    return done
+
+
+def load_models(sql_dir: str | Path | None = None, check_parse: bool = True) -> list[SqlModel]:
+    """All models of ``sql_dir`` (default: the package's ``sql/``), checked and ordered.
+
+    Models come in dependency order (a model after every model it reads). Raises
+    ``SqlModelError`` with ``file:line`` on the first problem found.
+    """
+    if sql_dir is None:
+        return list(_load_default(check_parse))
+    return _load(Path(sql_dir), check_parse)
+
+
+@lru_cache(maxsize=2)
+def _load_default(check_parse: bool) -> tuple[SqlModel, ...]:
+    return tuple(_load(SQL_DIR, check_parse))
+
+
+def _load(sql_dir: Path, check_parse: bool) -> list[SqlModel]:
+    files = sorted(sql_dir.glob("*.sql"))
+    if not files:
+        raise SqlModelError(f"{sql_dir}: no .sql model files", hint="Reinstall fleetwatch.")
+    models = [_parse_file(f) for f in files]
+    if check_parse:
+        for m in models:
+            _check_parses(m)
+    return _order(models)
+
+
+def model(name: str, sql_dir: str | Path | None = None) -> SqlModel:
+    """One model by name (KeyError lists the known names)."""
+    models = {m.name: m for m in load_models(sql_dir)}
+    try:
+        return models[name]
+    except KeyError:
+        raise KeyError(f"unknown SQL model '{name}'; known: {', '.join(models)}") from None
+
+
+def model_params(m: SqlModel, settings: Any, runtime: Mapping[str, Any] | None = None
+                 ) -> dict[str, Any]:
+    """The parameter values of ``m``: settings from ``settings``, the rest from ``runtime``.
+
+    ``settings`` is a ``fleetwatch.config.Settings`` (or any mapping of setting names).
+    Raises ``SqlModelError`` naming the file and line of a parameter with no value.
+    """
+    runtime = dict(runtime or {})
+    values: dict[str, Any] = {}
+    for p in m.params:
+        if p.runtime:
+            if p.name not in runtime:
+                raise _err(m.path, p.line, f"runtime parameter ${p.name} has no value",
+                           hint="Pass it in run_model(..., runtime={...}).")
+            values[p.name] = runtime[p.name]
+        else:
+            values[p.name] = runtime[p.name] if p.name in runtime else settings[p.name]
+    return values
+
+
+def run_model(con: Any, m: SqlModel, settings: Any, runtime: Mapping[str, Any] | None = None,
+              into: str | None = None, replace: bool = True) -> None:
+    """Materialise model ``m`` on DuckDB connection ``con`` as table ``into`` (default: the
+    model's name). ``replace=False`` appends to an existing table instead.
+
+    Parameters come from ``settings`` and ``runtime`` (see ``model_params``). DuckDB errors
+    are re-raised as ``SqlModelError`` naming the model's file.
+    """
+    import duckdb
+
+    target = into or m.name
+    params = model_params(m, settings, runtime)
+    body = m.sql.rstrip().rstrip(";")
+    if replace:
+        stmt = f"CREATE OR REPLACE TABLE {target} AS {body}"
+    else:
+        stmt = f"INSERT INTO {target} BY NAME SELECT * FROM (\n{body}\n)"
+    try:
+        con.execute(stmt, params)
+    except duckdb.Error as exc:
+        raise SqlModelError(f"{m.path}:{m.body_line}: model '{m.name}' failed: "
+                            f"{str(exc).splitlines()[0]}",
+                            hint="Run the file in a DuckDB shell with the same parameters "
+                            "to see the whole message.") from exc
+
+
+def describe_models(models: Iterable[SqlModel] | None = None) -> list[dict[str, Any]]:
+    """Name, description, params and output columns of each model (for docs and tests)."""
+    return [{"name": m.name, "description": m.description, "reads": list(m.reads),
+             "params": [(p.name, p.unit, p.help) for p in m.params],
+             "columns": [(c.name, c.unit, c.help) for c in m.columns],
+             "path": str(m.path)} for m in (models or load_models())]

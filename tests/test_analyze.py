@@ -1,0 +1,303 @@
+"""analyze on a simulated fleet: simulate -> ingest -> analyze (incremental), checked against
+the simulator's answer key and against physics, not against the simulator's fault shapes.
+
+The fleet is ``tests.fixtures_fleet.build_fleet``: 8 drives, 45 days, 5-minute logging, one
+unit of each fault kind; June is ingested and analyzed first, July afterwards (incremental).
+"""
+from __future__ import annotations
+
+import datetime as dt
+import json
+import socket
+
+import numpy as np
+import polars as pl
+import pytest
+
+from fleetwatch.analyze import DERIVED, analyze
+from fleetwatch.config import load_settings
+from fleetwatch.errors import ConfigError, LakeError, LockHeldError
+from fleetwatch.lake import Lake
+from fleetwatch.schema import TABLES
+from fixtures_fleet import build_fleet
+
+UTC = dt.timezone.utc
+
+
+@pytest.fixture(scope="module")
+def fleet(tmp_path_factory):
+    return build_fleet(tmp_path_factory.mktemp("fleet"))
+
+
+@pytest.fixture(scope="module")
+def tables(fleet):
+    lake = Lake.from_settings(fleet.settings)
+    return {n: lake.read(n) for n in DERIVED}
+
+
+def _ts(s: str) -> dt.datetime:
+    return dt.datetime.fromisoformat(s.replace("Z", "+00:00"))
+
+
+# ---------------------------------------------------------------- contract and runs
+def test_reports_say_what_was_done(fleet):
+    a, b = fleet.first, fleet.second
+    assert a.full and "first analyze" in a.reason
+    assert not b.full and "new batch" in b.reason
+    # the second run recomputes from the Monday before the new month, not from the start
+    assert b.from_day > dt.date(2026, 6, 1) and b.from_day.weekday() == 0
+    assert b.days_recomputed < 45 and b.units == 8
+    assert set(a.tables) == set(DERIVED) and all(v > 0 for v in a.tables.values())
+    assert "health models ran" in b.models
+    again = analyze(fleet.settings)
+    assert again.tables == {} and "no new telemetry" in again.reason
+
+
+def test_derived_tables_have_exactly_the_contract_columns(fleet):
+    lake = Lake.from_settings(fleet.settings)
+    con = lake.connect(list(DERIVED))
+    for name in DERIVED:
+        cols = con.execute(f"DESCRIBE {name}").fetchall()
+        got = [(c[0], c[1]) for c in cols]
+        want = [(c.name, c.type.replace("TIMESTAMPTZ", "TIMESTAMP WITH TIME ZONE"))
+                for c in TABLES[name].columns]
+        assert got == want, name
+        dup = con.execute(f"SELECT count(*) - count(DISTINCT ({', '.join(TABLES[name].key)})) "
+                          f"FROM {name}").fetchall()[0][0]
+        assert dup == 0, f"{name}: duplicate keys"
+
+
+def test_incremental_equals_full_rebuild(fleet, tables):
+    rep = analyze(fleet.settings, full=True)
+    assert rep.full and rep.days_recomputed == 45
+    lake = Lake.from_settings(fleet.settings)
+    for name in DERIVED:
+        key = list(TABLES[name].key)
+        inc = tables[name].sort(key)
+        full = lake.read(name).sort(key)
+        assert inc.height == full.height, name
+        for col in inc.columns:
+            a, b = inc[col], full[col]
+            if a.dtype.is_float():
+                np.testing.assert_allclose(a.to_numpy(), b.to_numpy(), rtol=1e-9, atol=1e-9,
+                                           err_msg=f"{name}.{col}")
+            else:
+                assert a.to_list() == b.to_list(), f"{name}.{col}"
+
+
+# ---------------------------------------------------------------- physics against the key
+def test_motor_constants_recover_the_true_r_and_k_e(fleet, tables):
+    mf = tables["motor_fits"]
+    for unit, t in fleet.key["units"].items():
+        m = mf.filter((pl.col("unit_id") == unit) & (pl.col("n") >= 30))
+        assert m.height >= 5, unit
+        # R referred to 20 degC via the logged temperature (domain.md 1.4, alpha from memory)
+        assert m["r_ohm"].median() == pytest.approx(t["motor"]["r_ohm_20c"], rel=0.05), unit
+        assert m["k_e"].median() == pytest.approx(t["motor"]["k_e_v_s_per_rad"], rel=0.05), unit
+        # no motor fault is simulated: weekly constants stay within a few per cent
+        assert m["r_drift_pct"].abs().max() < 3.0, unit
+        assert m["k_e_drift_pct"].abs().max() < 1.0, unit
+
+
+def _creep_b(ud, unit, d0, d1):
+    x = ud.filter((pl.col("unit_id") == unit) & (pl.col("day") >= d0) & (pl.col("day") < d1))
+    return x["creep_b"].drop_nulls().median()
+
+
+def test_compliance_flat_on_healthy_units_and_rising_on_worn_ones(fleet, tables):
+    ud = tables["unit_days"]
+    start = dt.date(2026, 6, 1)
+    ref = (start, start + dt.timedelta(days=14))
+    late = (start + dt.timedelta(days=31), start + dt.timedelta(days=45))
+    change = {}
+    for unit in fleet.key["units"]:
+        change[unit] = _creep_b(ud, unit, *late) / _creep_b(ud, unit, *ref) \
+            if _creep_b(ud, unit, *late) is not None else None
+    healthy = fleet.units("healthy") + fleet.units("stall")   # stalls do not touch the contact
+    worn = fleet.units("wear")
+    assert healthy and worn
+    for u in healthy:
+        assert 0.85 < change[u] < 1.15, (u, change[u])
+    for u in worn:
+        assert change[u] > 1.5, (u, change[u])
+    # the weekly per-bin fits tell the same story
+    cf = tables["creep_fits"]
+    for u in worn:
+        w = cf.filter(pl.col("unit_id") == u)
+        ref_b = w.filter(pl.col("is_reference"))["b"].median()
+        last_b = w.filter(pl.col("week_start") == w["week_start"].max())["b"].median()
+        assert last_b > 1.5 * ref_b
+
+
+def test_slip_at_load_tracks_the_true_slip_at_rated_load(fleet, tables):
+    """The key's slip_at_ref_by_day is the noise-free usage-averaged slip at load_ref_nm
+    (1 N*m motor torque); the daily robust creep fit must land near it while the contact
+    is in its micro-slip range."""
+    ud = tables["unit_days"]
+    start = dt.date.fromisoformat(fleet.key["args"]["start"])
+    for unit, t in fleet.key["units"].items():
+        if t["condition"] in ("sensor_flatline", "actuator", "contamination"):
+            continue
+        truth = pl.DataFrame({"day": [start + dt.timedelta(days=i)
+                                      for i in range(len(t["slip_at_ref_by_day"]))],
+                              "truth": t["slip_at_ref_by_day"]})
+        d = ud.filter(pl.col("unit_id") == unit).join(truth, on="day").filter(
+            pl.col("slip_at_load").is_not_null() & (pl.col("truth") < 0.04))
+        err = (d["slip_at_load"] - d["truth"]).abs().median()
+        assert err < 0.005, (unit, err)
+
+
+def test_actuator_fault_shows_as_a_load_independent_offset(fleet, tables):
+    ud = tables["unit_days"]
+    for unit in fleet.units("actuator"):
+        onset = _ts(fleet.key["units"][unit]["fault_start_ts"]).date()
+        d = ud.filter(pl.col("unit_id") == unit).drop_nulls("creep_a")
+        before = d.filter(pl.col("day") < onset)
+        after = d.filter(pl.col("day") > onset + dt.timedelta(days=1))
+        spread = (before["creep_a"] - before["creep_a"].median()).abs().median()
+        shift = abs(after["creep_a"].median() - before["creep_a"].median())
+        assert shift > 0.01 and shift > 20 * spread, (shift, spread)
+        # the compliance b barely moves: the offset does not depend on load
+        assert after["creep_b"].median() == pytest.approx(before["creep_b"].median(), rel=0.3)
+
+
+def test_gross_slip_events_follow_contamination_onset_and_not_before(fleet, tables):
+    ev = tables["events"].filter(pl.col("kind") == "gross_slip")
+    for unit in fleet.units("contamination"):
+        onset = _ts(fleet.key["units"][unit]["fault_start_ts"])
+        mine = ev.filter(pl.col("unit_id") == unit)
+        assert mine.height >= 1
+        assert mine["start_ts"].min() >= onset
+        assert (mine["peak"] > fleet.settings.gross_slip_limit).all()
+    # no gross slip on units whose contact is sound
+    for unit in fleet.units("healthy") + fleet.units("stall") + fleet.units("actuator") \
+            + fleet.units("sensor_flatline"):
+        assert ev.filter(pl.col("unit_id") == unit).height == 0, unit
+
+
+def test_stall_events_match_the_injected_stalls(fleet, tables):
+    ev = tables["events"].filter(pl.col("kind") == "stall")
+    for unit, t in fleet.key["units"].items():
+        mine = ev.filter(pl.col("unit_id") == unit)
+        assert mine["samples"].sum() == t["events"]["stall_samples"], unit
+        if t["condition"] == "stall":
+            assert mine.height >= 3
+            assert mine["start_ts"].min() == _ts(t["fault_start_ts"])
+            assert (mine["peak"] > fleet.settings.stall_i_a).all()
+            # they happen at starts in steep ratios (above the advisor's start limit)
+            assert (mine["ratio_cmd"] > fleet.settings.max_start_ratio).all()
+
+
+def test_ratio_changes_while_stopped_match_the_key(fleet, tables):
+    """Exact, except where a logger gap hides when the command changed (then the log cannot
+    tell a change at standstill from one while running): at most one per gap."""
+    ev = tables["events"].filter(pl.col("kind") == "ratio_change_stopped")
+    total = 0
+    for unit, t in fleet.key["units"].items():
+        found = ev.filter(pl.col("unit_id") == unit).height
+        gaps = len(t["gaps"]) + len(fleet.key["line_gaps"][t["line"]])
+        assert abs(found - t["events"]["ratio_changes_while_stopped"]) <= gaps, unit
+        total += t["events"]["ratio_changes_while_stopped"]
+    assert ev.height >= 0.9 * total
+
+
+def test_flatline_only_on_the_stuck_sensor_after_onset(fleet, tables):
+    ev = tables["events"].filter(pl.col("kind") == "flatline")
+    for unit, t in fleet.key["units"].items():
+        mine = ev.filter(pl.col("unit_id") == unit)
+        if t["condition"] == "sensor_flatline":
+            assert set(mine["signal"]) == {"n_out"}
+            assert mine["start_ts"].min() == _ts(t["fault_start_ts"])
+            assert mine["description"][0].startswith("n_out stuck at ")
+        else:
+            assert mine.height == 0, unit
+
+
+def test_every_logger_gap_is_a_data_gap_event(fleet, tables):
+    ev = tables["events"].filter(pl.col("kind") == "data_gap")
+    line_gaps = fleet.key["line_gaps"]
+    for unit, t in fleet.key["units"].items():
+        mine = ev.filter(pl.col("unit_id") == unit)
+        for a, b in t["gaps"] + line_gaps[t["line"]]:
+            a, b = _ts(a), _ts(b)
+            hit = mine.filter((pl.col("start_ts") < b) & (pl.col("end_ts") >= a))
+            assert hit.height >= 1, (unit, a, b)
+        assert (mine["peak"] > fleet.settings.gap_min_s).all()
+
+
+def test_efficiency_measured_only_where_torque_is_logged(fleet, tables):
+    eff = tables["efficiency"]
+    for unit, t in fleet.key["units"].items():
+        mine = eff.filter(pl.col("unit_id") == unit)
+        methods = set(mine["method"])
+        if t["instrumented"]:
+            assert methods == {"measured"}
+            e = mine["efficiency"].drop_nulls()
+            # elastomer friction-wheel variators: roughly 75-90 % (domain.md 2.5, from
+            # memory), times the motor's own efficiency here (electrical input power)
+            assert 0.5 < e.median() < 0.95
+            v = mine["variator_efficiency"].drop_nulls()
+            assert e.median() < v.median() < 1.0
+        else:
+            assert methods == {"residual_only"}
+            assert mine["efficiency"].null_count() == mine.height
+        # the residual of a sound unit is centred on zero
+        if t["condition"] in ("healthy", "stall"):
+            assert abs(mine["power_resid_pct"].median()) < 2.0
+
+
+def test_unit_days_count_the_events_of_each_day(fleet, tables):
+    ud, ev = tables["unit_days"], tables["events"]
+    counts = ev.group_by("unit_id", "day", "kind").len()
+    for kind, col in (("stall", "stall_events"), ("gross_slip", "gross_slip_events"),
+                      ("data_gap", "gap_events")):
+        c = counts.filter(pl.col("kind") == kind).select("unit_id", "day", n="len")
+        j = ud.join(c, on=["unit_id", "day"], how="left").with_columns(
+            pl.col("n").fill_null(0))
+        assert (j[col] == j["n"]).all(), kind
+    assert ud.filter(pl.col("samples") > 0)["completeness"].max() <= 1.0 + 1e-9
+    assert ud.height == 8 * 45
+
+
+# ---------------------------------------------------------------- errors and the CLI
+def test_analyze_without_telemetry_says_what_to_do(tmp_path):
+    s = load_settings(tmp_path, env={})
+    with pytest.raises(LakeError, match="no telemetry") as ei:
+        analyze(s)
+    assert "fleetwatch ingest" in ei.value.hint
+
+
+def test_analyze_refuses_a_window_that_does_not_divide_a_day(tmp_path):
+    s = load_settings(tmp_path, overrides={"window_min": 7}, env={})
+    with pytest.raises(ConfigError, match="does not divide a day") as ei:
+        analyze(s)
+    assert ei.value.exit_code == 2
+
+
+def test_analyze_refuses_while_another_process_writes(tmp_path):
+    s = load_settings(tmp_path, env={})
+    meta = s.lake_path / "_fleetwatch"
+    meta.mkdir(parents=True)
+    holder = {"pid": 1, "host": socket.gethostname(), "purpose": "ingest",
+              "since": "2026-01-01T00:00:00Z", "token": "x"}
+    (meta / "writer.lock").write_text(json.dumps(holder))   # pid 1 is alive: not stale
+    with pytest.raises(LockHeldError, match="purpose 'ingest'"):
+        analyze(s)
+
+
+def test_cli_analyze_json_and_error_lines(fleet, tmp_path, capsys, monkeypatch):
+    from fleetwatch.cli import main
+
+    monkeypatch.setenv("FLEETWATCH_SAMPLE_PERIOD_S", str(fleet.settings.sample_period_s))
+    with pytest.raises(SystemExit) as ei:
+        main(["--project", str(fleet.project), "analyze", "--json"])
+    assert ei.value.code == 0
+    rep = json.loads(capsys.readouterr().out)
+    assert rep["reason"].startswith("no new telemetry") and rep["tables"] == {}
+    assert rep["models"].startswith("health models ran")
+    with pytest.raises(SystemExit) as ei:
+        main(["--project", str(tmp_path), "analyze"])
+    assert ei.value.code == 1
+    err = capsys.readouterr().err.splitlines()
+    assert err[0] == "Error: the lake has no telemetry yet"
+    assert err[1].startswith("Hint: Ingest drive logs first")
