@@ -1,6 +1,6 @@
 """Ratio advisor: for each unit and duty, the ratio that needs the least input power.
 
-Steps (method and limits in docs/advisor.md):
+Steps (method and limits in the README, section "Output-torque soft sensor and ratio advisor"):
 
 1. Torque. Every steady window gets an output torque: logged where the unit measures it,
    else the soft sensor's estimate (fleetwatch.softsensor). Stored as ``torque_estimates``.

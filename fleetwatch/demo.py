@@ -23,6 +23,20 @@ def _have(module: str) -> bool:
     return importlib.util.find_spec(module) is not None
 
 
+def _last_data_week(settings) -> str | None:
+    """The last complete ISO week of the demo's data (the demo fleet lies in the past)."""
+
+    from .lake import Lake
+    from .views import IsoWeek
+
+    days = Lake.from_settings(settings).read("unit_days", columns=["day"])
+    if days.height == 0:
+        return None
+    last = days["day"].max()
+    week = IsoWeek.containing(last)
+    return (week if last >= week.sunday else week.previous()).label
+
+
 def run_demo(project: str | Path | None = None, units: int = 24, days: int = 120, seed: int = 7,
              serve: bool = True, echo: Callable[[str], None] = print) -> dict:
     """Run the demo; returns what was written (paths and counts).
@@ -47,13 +61,10 @@ def run_demo(project: str | Path | None = None, units: int = 24, days: int = 120
     echo(f"    {len(sim.files)} files, {sim.rows:,} rows ({sim.elapsed_s:.1f} s); "
          f"answer key {sim.answer_key}")
 
-    if not _have("fleetwatch.ingest"):
-        echo("Next: ingest is not part of this build yet.")
-        return out
     from .ingest import ingest_files
 
     echo("[2] Ingesting logs and the maintenance log into the lake ...")
-    rep = ingest_files([fleet_dir], settings, mapping=fleet_dir / "mapping.toml",
+    rep = ingest_files(sorted(str(f) for f in fleet_dir.glob("telemetry_*.csv")), settings, mapping=fleet_dir / "mapping.toml",
                        kind="telemetry")
     mrep = ingest_files([fleet_dir / "maintenance.csv"], settings,
                         mapping=fleet_dir / "maintenance_mapping.toml", kind="maintenance")
@@ -63,8 +74,6 @@ def run_demo(project: str | Path | None = None, units: int = 24, days: int = 120
     echo(f"    maintenance: {mrep.totals['accepted']} entries")
     out["ingest"] = t
 
-    if not _have("fleetwatch.analyze"):
-        return out
     from .analyze import analyze
 
     echo("[3] Analyzing: slip, events, fits, anomaly scores, trends, health ...")
@@ -77,19 +86,23 @@ def run_demo(project: str | Path | None = None, units: int = 24, days: int = 120
         echo("[4] Fleet status (latest day):")
         echo(format_status_table(fleet_status(settings)))
 
-    if _have("fleetwatch.report"):
-        from .report import build_report
-
-        echo("[5] Weekly wear report ...")
-        res = build_report(settings)
-        out["report"] = str(res.paths["html"])
-        echo(f"    {res.paths['html']}")
-
     if _have("fleetwatch.advisor"):
         from .advisor import advise
 
+        echo("[5] Ratio advice (least input power per duty) ...")
         adv = advise(settings, write=True)
-        out["advice"] = getattr(adv, "summary", None)
+        out["advice"] = adv.summary
+        echo(f"    fleet saving if followed: {adv.fleet_kwh_week:.2f} kWh/week "
+             f"({adv.fleet_kwh_week_low:.2f} .. {adv.fleet_kwh_week_high:.2f})")
+
+    if _have("fleetwatch.report"):
+        from .report import build_report
+
+        week = _last_data_week(settings)
+        echo(f"[6] Weekly wear report for {week or 'the last complete week'} ...")
+        res = build_report(settings, week=week)
+        out["report"] = str(res.paths["html"])
+        echo(f"    {res.paths['html']}")
 
     echo(f"Demo built in {time.perf_counter() - t0:.0f} s. Project: {root}")
     echo(f"Try: fleetwatch --project {root} sql \"SELECT unit_id, status, reasons FROM health "
@@ -97,6 +110,6 @@ def run_demo(project: str | Path | None = None, units: int = 24, days: int = 120
     if serve and _have("fleetwatch.dashboard"):
         from .dashboard import serve_dashboard
 
-        echo("[6] Starting the dashboard (Ctrl+C stops it) ...")
-        serve_dashboard(settings, block=True)
+        echo("[7] Starting the dashboard (Ctrl+C stops it) ...")
+        serve_dashboard(settings, block=True, echo=echo)
     return out
