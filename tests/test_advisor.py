@@ -14,7 +14,7 @@ Two kinds of fleet:
   voltage-limited motor speed put the optimum where they run), so the true saving is about
   0.03 % of the input energy: the 20 % target is below what any data-driven model resolves
   there, and the test checks the saving against an absolute floor instead (see
-  docs/advisor.md, "Limits").
+  the README, "Output-torque soft sensor and ratio advisor", "Limits").
 """
 from __future__ import annotations
 
@@ -354,7 +354,7 @@ def test_advice_near_true_optimum_on_healthy_simulated_units(sim):
     the true power changes by >= 1 % over the observed range. There, with the unit's own
     windows behind the advice, the issue's 0.1 holds; everywhere the advice may cost at
     most 3 % of the duty's power (pooled line bins compare different drives, see
-    docs/advisor.md)."""
+    the README, "Output-torque soft sensor and ratio advisor")."""
     settings, res, key = sim
     healthy = [u for u, t in key["units"].items() if t["condition"] == "healthy"]
     truth = _truth_table(key, res.advice.filter(pl.col("unit_id").is_in(healthy)),
