@@ -133,11 +133,14 @@ def _collect(con: Any, wk: IsoWeek, settings: Any, report_date: dt.date) -> dict
     week_maint = vw.maintenance_markers(con, start=t0, end=t1)
     motor = vw.motor_drift(con, start=wk.monday, end=wk.sunday)
     energy = vw.energy_summary(con, wk.monday, wk.sunday)
+    advice = vw.advice_top(con, limit=10)
+    advice_totals = vw.advice_totals(con)
     dist = vw.fleet_slip_distribution(con, wk.monday - dt.timedelta(weeks=12), wk.sunday)
     return {
         "overview": overview, "counts": counts, "changes": changes, "changes_df": changes_df,
         "actions": actions, "dq": dq, "week_events": week_events, "week_maint": week_maint,
-        "motor": motor, "energy": energy, "dist": dist, "t0": t0, "t1": t1,
+        "motor": motor, "energy": energy, "advice": advice,
+        "advice_totals": advice_totals, "dist": dist, "t0": t0, "t1": t1,
     }
 
 
@@ -440,6 +443,8 @@ def _render_html(data: dict[str, Any], evidence: dict[str, Any], svgs: dict[str,
         energy_total_kwh=float(energy["energy_in_kwh"].sum() or 0.0),
         energy_measured=list(measured.iter_rows(named=True)),
         energy_units=energy.height,
+        advice=list(data["advice"].iter_rows(named=True)),
+        advice_totals=data["advice_totals"],
         dq=data["dq"], dq_totals=data["dq"].totals(),
         quarantine=list(data["dq"].quarantine.iter_rows(named=True)),
         low_completeness=list(data["dq"].completeness.filter(pl.col("completeness") < 0.9)

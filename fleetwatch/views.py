@@ -700,6 +700,34 @@ def energy_summary(source: Any, start: Any = None, end: Any = None) -> pl.DataFr
         GROUP BY unit_id ORDER BY energy_in_kwh DESC NULLS LAST, unit_id""", **params)
 
 
+def advice_top(source: Any, limit: int = 10) -> pl.DataFrame:
+    """Ratio advice worth acting on: the `advice` rows with status 'change', largest weekly
+    saving first (at most ``limit``). Empty when `fleetwatch advise` has not run.
+
+    Columns: unit_id, n_out_lo_rpm, n_out_hi_rpm, t_out_lo_nm, t_out_hi_nm, ratio_used,
+    ratio_advised, saving_kwh_week, saving_kwh_week_low, saving_kwh_week_high, windows,
+    torque_source, limited_by.
+    """
+    return _q(source, f"""
+        SELECT unit_id, n_out_lo_rpm, n_out_hi_rpm, t_out_lo_nm, t_out_hi_nm, ratio_used,
+               ratio_advised, saving_kwh_week, saving_kwh_week_low, saving_kwh_week_high,
+               windows, torque_source, limited_by
+        FROM advice WHERE status = 'change'
+        ORDER BY saving_kwh_week DESC NULLS LAST, unit_id LIMIT {int(limit)}""")
+
+
+def advice_totals(source: Any) -> dict:
+    """Fleet totals of the `advice` table: rows by status and the summed weekly saving of
+    the 'change' rows (kWh/week; the advisor's own fleet interval is in `fleetwatch advise`)."""
+    df = _q(source, """
+        SELECT count(*) AS bins, count(*) FILTER (WHERE status = 'change') AS change,
+               sum(saving_kwh_week) FILTER (WHERE status = 'change') AS saving_kwh_week,
+               count(DISTINCT unit_id) FILTER (WHERE status = 'change') AS units
+        FROM advice""")
+    row = df.row(0, named=True) if df.height else {}
+    return {k: row.get(k) for k in ("bins", "change", "saving_kwh_week", "units")}
+
+
 # ----------------------------------------------------------------------------- data quality
 @dataclass
 class DataQuality:

@@ -9,13 +9,20 @@ import sys
 import pytest
 
 
-@pytest.mark.slow
-def test_demo_builds_lake_status_report_and_advice(tmp_path):
-    proj = tmp_path / "demo"
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    """One small demo project, built through the CLI exactly as a newcomer would."""
+    proj = tmp_path_factory.mktemp("demo") / "demo"
     r = subprocess.run([sys.executable, "-m", "fleetwatch", "--project", str(proj), "demo",
                         "--units", "8", "--days", "40", "--seed", "5", "--no-serve"],
                        capture_output=True, text=True, timeout=900)
     assert r.returncode == 0, r.stderr[-3000:]
+    return proj, r
+
+
+@pytest.mark.slow
+def test_demo_builds_lake_status_report_and_advice(demo):
+    proj, r = demo
     out = r.stdout
     # every stage ran and said what it wrote
     for step in ("[1] Simulating", "[2] Ingesting", "[3] Analyzing", "[4] Fleet status",
@@ -43,3 +50,26 @@ def test_demo_builds_lake_status_report_and_advice(tmp_path):
     assert st.returncode == 0, st.stderr
     units = json.loads(st.stdout)
     assert {u["unit_id"] for u in units} == set(key["units"])
+
+
+@pytest.mark.slow
+def test_report_energy_section_shows_the_advice_table_totals(demo):
+    """The report's ratio-advice figure equals the sum over the `advice` table's 'change'
+    rows, read independently through the guarded SQL function."""
+    import re
+
+    from fleetwatch.config import load_settings
+    from fleetwatch.query import run_query
+
+    proj, _ = demo
+    html = next((proj / "reports").glob("*/report.html")).read_text(encoding="utf-8")
+    assert "Ratio advice: least input power for the same duty" in html
+    res = run_query("SELECT coalesce(sum(saving_kwh_week), 0) AS s, count(*) AS n FROM advice "
+                    "WHERE status = 'change'", settings=load_settings(proj))
+    total, n = res.rows.row(0)
+    if n == 0:
+        assert "No ratio advice worth acting on" in html
+    else:
+        shown = float(re.search(r"would save about <strong>([\d.]+) kWh/week", html).group(1))
+        assert shown == pytest.approx(total, abs=0.006)
+        assert html.count('<table class="advice">') == 1
