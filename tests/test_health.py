@@ -363,3 +363,20 @@ def test_status_command_without_health_table(tmp_path, capsys):
     assert code == 1 and out == ""
     assert "Error: no health table in the lake" in err
     assert "Hint: Ingest logs and run `fleetwatch analyze` first." in err
+
+
+def test_actuator_reason_on_a_day_without_a_fit_names_when_it_was_last_seen():
+    """A held actuator state on a day with no steady running (no creep fit) must still read
+    as a sentence with dates, not print a missing number."""
+    from fleetwatch.models.health import _Channel
+
+    ch = _Channel("actuator")
+    ch.since, ch.last_hit = dt.date(2026, 7, 15), dt.date(2026, 7, 17)
+    text = HealthRules()._why_actuator({"creep_a": None, "creep_a__med": 0.0045}, ch,
+                                       dt.date(2026, 7, 18), None)
+    assert "n/a" not in text
+    assert "since 2026-07-15" in text and "last on 2026-07-17" in text
+    assert "0.45 %" in text
+    with_fit = HealthRules()._why_actuator({"creep_a": 0.031, "creep_a__med": 0.0045}, ch,
+                                           dt.date(2026, 7, 18), None)
+    assert "3.10 %" in with_fit

@@ -590,6 +590,11 @@ class HealthRules(FleetModel):
 
     def _why_actuator(self, r: dict, c: _Channel, day, _flat) -> str:
         a, a_ref = _f(r.get("creep_a")), _f(r.get("creep_a__med"))
+        if a is None:  # no usable fit today (no steady running): say when it was last seen
+            return (f"load-independent slip offset (creep a) raised since {c.since}, last on "
+                    f"{c.last_hit}, reference {_pct(a_ref, 2)}: ratio actuator or wheel "
+                    f"position error; clears after {int(self.clear_m)} clean days "
+                    f"[unit_days {c.since}..{day}]")
         return (f"load-independent slip offset (creep a) {_pct(a, 2)} against reference "
                 f"{_pct(a_ref, 2)} while the compliance changed less: ratio actuator or wheel "
                 f"position error [unit_days {c.since}..{day}]")
