@@ -357,6 +357,8 @@ class _Decoder:
 
     def __call__(self, b: bytes, line: int) -> bytes:
         if self.mode in ("utf-8", "utf-8-sig"):
+            if b.isascii():      # the common case: valid UTF-8 without building a str
+                return b
             try:
                 b.decode("utf-8")
                 return b
@@ -528,8 +530,11 @@ class _CsvSource(_Source):
                                                for c in names])
                     df = df.filter(~blank)
                 extras = [f"_extra_{i + 1}" for i in range(_N_EXTRA)]
-                mal = df.select(pl.any_horizontal([pl.col(e).fill_null("") != ""
-                                                   for e in extras])).to_series()
+                if all(df[e].null_count() == df.height for e in extras):
+                    mal = pl.repeat(False, df.height, dtype=pl.Boolean, eager=True)
+                else:
+                    mal = df.select(pl.any_horizontal([pl.col(e).fill_null("") != ""
+                                                       for e in extras])).to_series()
                 if mal.any():  # fields past the header that hold more than blanks
                     mal = df.select(pl.any_horizontal([
                         pl.col(e).fill_null("").str.strip_chars() != "" for e in extras])
@@ -1104,10 +1109,15 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
     rule = pl.lit(None, pl.String)
     for i in reversed(range(len(checks))):
         rule = pl.when(pl.col(fcols[i])).then(pl.lit(checks[i][1])).otherwise(rule)
-    df = df.with_columns(_rule=rule)
+    # the rule (first failing check) is worked out for the failing rows only
+    is_bad = df.select(pl.any_horizontal(fcols)).to_series()
     canon = [_C + c for c in FIELDS[kind] if _C + c in df.columns]
-    good = df.select(["_line", "_rule"] + canon).filter(pl.col("_rule").is_null()).drop("_rule")
-    bad = df.filter(pl.col("_rule").is_not_null())
+    if not is_bad.any():
+        good = df.select(["_line"] + canon)
+        bad = df.clear().with_columns(_rule=rule)
+    else:
+        good = df.filter(~is_bad).select(["_line"] + canon)
+        bad = df.filter(is_bad).with_columns(_rule=rule)
     col = pl.lit(None, pl.String)
     msg = pl.lit(None, pl.String)
     for i in reversed(range(len(checks))):
@@ -1210,8 +1220,12 @@ def _split(good: pl.DataFrame, bad: pl.DataFrame, plan: _Plan, lake: Lake,
         return good, bad, 0
     dups = 0
     conflicts: list[pl.DataFrame] = []
-    first = good.select(pl.struct(key).is_first_distinct()).to_series()
-    if not first.all():
+    # distinct key hashes prove distinct keys; only otherwise find the first rows exactly
+    if good.select(pl.struct(key).hash().n_unique()).item() == good.height:
+        first = None
+    else:
+        first = good.select(pl.struct(key).is_first_distinct()).to_series()
+    if first is not None and not first.all():
         later = good.filter(~first)
         cand = good.filter(first)
         ref = cand.select(key + [pl.col(v).alias(v + "_ref") for v in vals]
