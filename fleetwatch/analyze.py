@@ -6,12 +6,14 @@ models of ``fleetwatch/sql`` in DuckDB over the lake's views and the per-unit fi
 see the old or the new version), and finally calls ``fleetwatch.models.run_models`` when
 that stage is installed.
 
-Incremental by default. A small state file in the lake (``_analyze_state.json``) records
-which telemetry batches, which wear resets and which settings/SQL the derived tables
-reflect. The next run recomputes from the Monday on or before the day before the earliest
-new sample (or the unit's previous sample, so a pause that ends in new data is whole; or the
-start of a reference period that the new data falls in, because everything after it leans
-on that reference) up to the end of the data. Whole ISO weeks, so the weekly fits of the
+Incremental by default. A small state file in the lake (``_fleetwatch/analyze_state.json``)
+records what the derived tables reflect: telemetry rows per UTC day, each unit's first
+sample, the wear resets and a fingerprint of the analyze settings, the SQL files and
+fits.py. The next run compares the rows per day (cheap: ``day`` is the partition column)
+and recomputes from the Monday on or before the day before the earliest changed day (or
+the unit's previous sample, so a pause that ends in new data is whole; or the start of a
+reference period that the new data falls in, because everything after it leans on that
+reference) up to the end of the data. Whole ISO weeks, so the weekly fits of the
 affected weeks see all their samples. A change of the analyze settings or of the SQL files,
 a missing derived table or ``full=True`` rebuilds everything.
 
@@ -41,6 +43,7 @@ from .schema import TABLES
 from .sqlmodels import load_models, run_model
 
 __all__ = ["analyze", "AnalyzeReport", "AnalysisPlan", "run_analysis", "plan_analysis",
+           "state_after",
            "ANALYZE_SETTINGS", "DERIVED", "CHUNK_ROWS", "STATE_FILE"]
 
 UTC = dt.timezone.utc
@@ -48,10 +51,14 @@ UTC = dt.timezone.utc
 #: Tables analyze writes (the fit tables included).
 DERIVED = ("windows", "events", "unit_days", "motor_fits", "creep_fits", "efficiency")
 #: Telemetry rows per processing chunk (whole ISO weeks; bounds memory).
-CHUNK_ROWS = 6_000_000
-#: DuckDB memory limit of the analyze connection (it spills to a temp folder beyond).
-DUCKDB_MEMORY_LIMIT = "3GB"
-#: ... and while the derived tables are handed to the lake (Arrow copies live then).
+CHUNK_ROWS = 4_000_000
+#: Steady windows per batch of units in the fit phase (bounds the Python-side frames).
+FIT_BATCH_WINDOWS = 1_500_000
+#: DuckDB memory limit of the analyze connection while it works through the samples (it
+#: spills to a temp folder beyond) ...
+DUCKDB_MEMORY_LIMIT = "2GB"
+#: ... and afterwards, while the fits hold window-level frames in Python and the lake
+#: writes Arrow copies of the derived tables.
 DUCKDB_WRITE_MEMORY_LIMIT = "1GB"
 #: State file inside the lake folder.
 STATE_FILE = "_analyze_state.json"
@@ -95,13 +102,18 @@ class AnalyzeReport:
 
 @dataclass
 class AnalysisPlan:
-    """The range one run recomputes: [from_day, to_day), whole ISO weeks."""
+    """The range one run recomputes: [from_day, to_day), whole ISO weeks.
+
+    ``day_counts`` (telemetry rows per UTC day), ``first_ts`` (first sample per unit) and
+    ``resets`` (wear resets) describe the lake as analyzed; they become the next state.
+    """
 
     full: bool
     from_day: Optional[dt.date]
     to_day: Optional[dt.date]
     reason: str
-    batches: list[str]
+    day_counts: dict[dt.date, int]
+    first_ts: dict[str, dt.datetime]
     resets: list[list[str]]
     fingerprint: str
     chunks: list[tuple[dt.date, dt.date]] = field(default_factory=list)
@@ -157,21 +169,31 @@ def _context_s(settings: Any) -> float:
 
 
 # ---------------------------------------------------------------- planning
+def _first_ts(con, where: str = "", params: dict | None = None) -> dict[str, dt.datetime]:
+    rows = con.execute(f"SELECT unit_id, min(ts) FROM telemetry {where} GROUP BY unit_id",
+                       params or {}).fetchall()
+    return {u: t.astimezone(UTC) for u, t in rows}
+
+
 def plan_analysis(con, settings: Any, state: dict | None, full: bool,
                   have_derived: bool) -> AnalysisPlan:
-    """Decide what to recompute from the lake views on ``con`` and the previous state."""
+    """Decide what to recompute from the lake views on ``con`` and the previous state.
+
+    New telemetry is found by comparing rows per UTC day (``day`` is the partition column,
+    so this costs no scan of the values) with the counts of the last run; only the changed
+    days are then read. Raises LakeError when there is no telemetry.
+    """
     fp = fingerprint(settings)
     if not _has_view(con, "telemetry"):
         raise LakeError("the lake has no telemetry yet",
                         hint="Ingest drive logs first: fleetwatch ingest --mapping MAP LOGS...")
-    span = con.execute("SELECT min(day), max(day), count(*) FROM telemetry").fetchall()[0]
-    if span[2] == 0:
+    day_counts = dict(con.execute(
+        "SELECT day, count(*) FROM telemetry GROUP BY day").fetchall())
+    if not day_counts:
         raise LakeError("the telemetry table is empty",
                         hint="Ingest drive logs first: fleetwatch ingest --mapping MAP LOGS...")
-    first_day, last_day = span[0], span[1]
+    first_day, last_day = min(day_counts), max(day_counts)
     end_day = _monday(last_day) + dt.timedelta(days=7)
-    batches = sorted(r[0] for r in con.execute(
-        "SELECT DISTINCT batch_id FROM telemetry").fetchall())
     resets: list[list[str]] = []
     if _has_view(con, "maintenance"):
         resets = [[r[0], r[1].astimezone(UTC).isoformat()] for r in con.execute(
@@ -179,27 +201,28 @@ def plan_analysis(con, settings: Any, state: dict | None, full: bool,
         ).fetchall()]
 
     def whole(reason: str) -> AnalysisPlan:
-        return AnalysisPlan(True, _monday(first_day), end_day, reason, batches, resets, fp)
+        return AnalysisPlan(True, _monday(first_day), end_day, reason, day_counts,
+                            _first_ts(con), resets, fp)
 
     if full:
         return whole("full rebuild requested")
-    if not state or not have_derived:
+    if not state or not have_derived or "day_counts" not in state:
         return whole("first analyze of this lake")
     if state.get("fingerprint") != fp:
         return whole("analyze settings or SQL models changed since the last run")
 
-    new_batches = sorted(set(batches) - set(state.get("batches", [])))
-    gone = set(state.get("batches", [])) - set(batches)
-    if gone:
-        return whole(f"{len(gone)} analyzed batch(es) no longer in telemetry")
+    old_counts = {dt.date.fromisoformat(d): n for d, n in state["day_counts"].items()}
+    changed = sorted(d for d in set(day_counts) | set(old_counts)
+                     if day_counts.get(d) != old_counts.get(d))
+    first = {u: dt.datetime.fromisoformat(t) for u, t in state.get("first_ts", {}).items()}
     starts: list[dt.datetime] = []
-    if new_batches:
-        con.execute("CREATE OR REPLACE TEMP TABLE _new_batches (batch_id VARCHAR)")
-        con.executemany("INSERT INTO _new_batches VALUES (?)", [[b] for b in new_batches])
+    if changed:
+        con.execute("CREATE OR REPLACE TEMP TABLE _changed_days (day DATE)")
+        con.executemany("INSERT INTO _changed_days VALUES (?)", [[d] for d in changed])
         rows = con.execute("""
             WITH nb AS (
                 SELECT unit_id, min(ts) AS first_new, min(day) AS first_new_day
-                FROM telemetry WHERE batch_id IN (SELECT batch_id FROM _new_batches)
+                FROM telemetry WHERE day IN (SELECT day FROM _changed_days)
                 GROUP BY unit_id)
             SELECT nb.unit_id, nb.first_new,
                    (SELECT max(t.ts) FROM telemetry AS t
@@ -207,50 +230,53 @@ def plan_analysis(con, settings: Any, state: dict | None, full: bool,
                        AND t.day >= nb.first_new_day - 31 AND t.day <= nb.first_new_day)
                        AS prev_ts
             FROM nb""").fetchall()
-        con.execute("DROP TABLE _new_batches")
-        for unit_id, first_new, prev_ts in rows:
-            starts.append(prev_ts if prev_ts is not None else first_new)
-        # new data inside a reference period: everything after that reference leans on it
-        first = dict(con.execute("SELECT unit_id, min(ts) FROM telemetry GROUP BY 1").fetchall())
-        ref_days = dt.timedelta(days=int(settings["reference_days"]))
+        con.execute("DROP TABLE _changed_days")
+        starts.append(_ts(changed[0]))      # rows gone from a day also change its results
         seg_starts: dict[str, list[dt.datetime]] = {}
         for u, t in resets:
             seg_starts.setdefault(u, []).append(dt.datetime.fromisoformat(t))
-        for unit_id, first_new, _prev in rows:
-            cands = [first[unit_id]] + [s for s in seg_starts.get(unit_id, [])
-                                        if s > first[unit_id]]
-            ref_start = max((s for s in cands if s <= first_new), default=first[unit_id])
+        ref_days = dt.timedelta(days=int(settings["reference_days"]))
+        for unit_id, first_new, prev_ts in rows:
+            first_new = first_new.astimezone(UTC)
+            # a pause that ends in the new data starts at the unit's previous sample
+            starts.append(prev_ts.astimezone(UTC) if prev_ts is not None else first_new)
+            if unit_id not in first or first_new < first[unit_id]:
+                first[unit_id] = first_new
+            # new data inside a reference period: everything after that reference leans on it
+            cands = [first[unit_id]] + [x for x in seg_starts.get(unit_id, [])
+                                        if x > first[unit_id]]
+            ref_start = max((x for x in cands if x <= first_new), default=first[unit_id])
             if first_new < ref_start + ref_days:
                 starts.append(ref_start)
+        if any(d < min(old_counts, default=first_day) for d in changed) or \
+                any(day_counts.get(d, 0) < old_counts.get(d, 0) for d in changed):
+            first = _first_ts(con)              # data before the old start, or rows removed
     old_resets = {tuple(r) for r in state.get("resets", [])}
-    for u, t in resets:
-        if (u, t) not in old_resets:
-            starts.append(dt.datetime.fromisoformat(t))
-    for u, t in old_resets - {tuple(r) for r in resets}:
+    for u, t in {tuple(r) for r in resets} ^ old_resets:
         starts.append(dt.datetime.fromisoformat(t))
     if not starts:
         return AnalysisPlan(False, None, None, "no new telemetry or maintenance since the "
-                            "last analyze", batches, resets, fp)
+                            "last analyze", day_counts, first, resets, fp)
     start = min(starts).astimezone(UTC).date() - dt.timedelta(days=1)
     from_day = max(_monday(start), _monday(first_day))
-    return AnalysisPlan(False, from_day, end_day,
-                        f"{len(new_batches)} new batch(es) since the last analyze",
-                        batches, resets, fp)
+    what = f"{len(changed)} day(s) with new or changed telemetry" if changed else \
+        "wear resets changed"
+    return AnalysisPlan(False, from_day, end_day, what + " since the last analyze",
+                        day_counts, first, resets, fp)
 
 
-def _chunks(con, from_day: dt.date, to_day: dt.date) -> list[tuple[dt.date, dt.date]]:
+def _chunks(plan: AnalysisPlan) -> list[tuple[dt.date, dt.date]]:
     """Consecutive whole-week chunks of about CHUNK_ROWS telemetry rows."""
-    per_week = dict(con.execute(
-        "SELECT date_trunc('week', day)::DATE AS wk, count(*) FROM telemetry "
-        "WHERE day >= $a AND day < $b GROUP BY 1", {"a": from_day, "b": to_day}).fetchall())
+    per_week: dict[dt.date, int] = {}
+    for d, n in plan.day_counts.items():
+        per_week[_monday(d)] = per_week.get(_monday(d), 0) + n
     out: list[tuple[dt.date, dt.date]] = []
-    a = from_day
+    a = wk = plan.from_day
     rows = 0
-    wk = from_day
-    while wk < to_day:
+    while wk < plan.to_day:
         rows += per_week.get(wk, 0)
         nxt = wk + dt.timedelta(days=7)
-        if rows >= CHUNK_ROWS or nxt >= to_day:
+        if rows >= CHUNK_ROWS or nxt >= plan.to_day:
             out.append((a, nxt))
             a, rows = nxt, 0
         wk = nxt
@@ -296,6 +322,52 @@ def run_analysis(con, settings: Any, plan: AnalysisPlan,
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+_WCOLS = ("unit_id", "window_start", "day", "steady_samples", "slip_mean", "load_mean",
+          "load_source", "ratio_cmd_mean", "n_out_mean", "p_in_mean")
+
+
+def _unit_batches(per_unit: dict[str, int], budget: int) -> list[list[str]]:
+    """Units grouped so that each group holds about ``budget`` windows."""
+    out: list[list[str]] = [[]]
+    n = 0
+    for u in sorted(per_unit):
+        if out[-1] and n + per_unit[u] > budget:
+            out.append([])
+            n = 0
+        out[-1].append(u)
+        n += per_unit[u]
+    return [b for b in out if b]
+
+
+def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime
+                   ) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Steady windows of ``units``: those just computed, and those plus the older windows of
+    the units' reference periods (from the lake, for an incremental run)."""
+    cols = ", ".join(_WCOLS)
+    con.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
+    win_new = pl.from_arrow(con.sql(
+        f"SELECT {cols} FROM windows WHERE steady_samples >= 2 "
+        "AND unit_id IN (SELECT unit_id FROM _units)").to_arrow_table())
+    con.unregister("_units")
+    win_new = win_new.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
+                                   .dt.cast_time_unit("us"))
+    if prev is None:
+        return win_new, win_new
+    prev.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
+    old = pl.from_arrow(prev.sql(
+        f"SELECT {', '.join('w.' + c for c in _WCOLS)} "
+        "FROM windows AS w JOIN _ref_periods AS r "
+        "ON w.unit_id = r.unit_id AND w.window_start >= r.ref_start "
+        "AND w.window_start < r.ref_end "
+        "WHERE w.steady_samples >= 2 AND w.window_start < $f "
+        "AND w.unit_id IN (SELECT unit_id FROM _units)", params={"f": from_ts}
+    ).to_arrow_table())
+    prev.unregister("_units")
+    old = old.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
+                           .dt.cast_time_unit("us"))
+    return win_new, pl.concat([old.cast(win_new.schema), win_new])
+
+
 def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
          ) -> dict[str, int]:
     con.execute("SET TimeZone = 'UTC'")
@@ -303,7 +375,7 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     con.execute(f"SET temp_directory = '{Path(tmp) / 'spill'}'")
     con.execute("SET preserve_insertion_order = false")
 
-    chunks = _chunks(con, plan.from_day, plan.to_day)
+    chunks = _chunks(plan)
     plan.chunks = chunks
     total = len(chunks) + 4
     step = 0
@@ -315,10 +387,9 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
             progress(step, total)
 
     full = plan.full
-    first_ts = pl.from_arrow(con.sql(
-        "SELECT unit_id, min(ts) AS first_ts FROM telemetry GROUP BY unit_id").to_arrow_table())
-    first_ts = first_ts.with_columns(pl.col("first_ts").dt.convert_time_zone("UTC")
-                                     .dt.cast_time_unit("us"))
+    first_ts = pl.DataFrame({"unit_id": list(plan.first_ts),
+                             "first_ts": list(plan.first_ts.values())},
+                            schema={"unit_id": pl.String, "first_ts": pl.Datetime("us", "UTC")})
     maint = None
     if _has_view(con, "maintenance"):
         maint = pl.from_arrow(con.sql(
@@ -350,6 +421,8 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
         con.execute("DROP TABLE motor_sums")
         tick()
 
+    # the per-sample work is done: DuckDB keeps (or spills) only window-level tables now
+    con.execute(f"SET memory_limit = '{DUCKDB_WRITE_MEMORY_LIMIT}'")
     from_day = None if full else plan.from_day
     from_ts = _ts(plan.from_day)
     written: dict[str, int] = {}
@@ -366,37 +439,39 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     motor_table = fits.motor_fits_with_drift(new_motor, first_ts, int(settings["reference_days"]))
     tick()
 
-    # -- creep: windows of the range plus older reference windows from the lake
-    wcols = ("unit_id, window_start, day, steady_samples, slip_mean, load_mean, load_source, "
-             "ratio_cmd_mean, n_out_mean, p_in_mean")
-    win_new = pl.from_arrow(con.sql(
-        f"SELECT {wcols} FROM windows WHERE steady_samples >= 2").to_arrow_table())
-    win_ref_old = None
-    if not full and prev is not None and _has_view(prev, "windows"):
-        ref = segments.select("unit_id", "ref_start", "ref_end")
-        prev.register("_ref_periods", ref.to_arrow())
-        win_ref_old = pl.from_arrow(prev.sql(
-            f"SELECT {', '.join('w.' + c.strip() for c in wcols.split(','))} "
-            "FROM windows AS w JOIN _ref_periods AS r "
-            "ON w.unit_id = r.unit_id AND w.window_start >= r.ref_start "
-            "AND w.window_start < r.ref_end "
-            "WHERE w.steady_samples >= 2 AND w.window_start < $f",
-            params={"f": from_ts}).to_arrow_table())
-    ref_windows = win_new if win_ref_old is None else pl.concat(
-        [win_ref_old.cast(win_new.schema), win_new])
-    ref_windows = ref_windows.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
-                                           .dt.cast_time_unit("us"))
-    win_new = win_new.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
-                                   .dt.cast_time_unit("us"))
+    # -- creep and power models, a batch of units at a time (window-level frames stay small)
     flat_sql = "SELECT unit_id, start_ts, end_ts, signal FROM events WHERE kind = 'flatline'"
     flat = pl.from_arrow(con.sql(flat_sql).to_arrow_table())
     if not full and prev is not None and _has_view(prev, "events"):
         old_flat = pl.from_arrow(prev.sql(flat_sql + " AND day < $d", params={
             "d": plan.from_day}).to_arrow_table())
         flat = pl.concat([old_flat.cast(flat.schema), flat])
-    cw_new = fits.drop_flatlined(fits.creep_windows(win_new, settings), flat,
-                                 settings["window_min"])
-    creep_new = fits.creep_fits_weekly(cw_new, segments)
+    old_windows = not full and prev is not None and _has_view(prev, "windows")
+    if old_windows:
+        prev.register("_ref_periods", segments.select("unit_id", "ref_start", "ref_end")
+                      .to_arrow())
+    per_unit = dict(con.execute("SELECT unit_id, count(*) FROM windows "
+                                "WHERE steady_samples >= 2 GROUP BY unit_id").fetchall())
+    creep_parts, daily_parts, pm_parts = [], [], []
+    for units in _unit_batches(per_unit, FIT_BATCH_WINDOWS):
+        win_new, ref_windows = _batch_windows(con, prev if old_windows else None, units,
+                                              from_ts)
+        fl = flat.filter(pl.col("unit_id").is_in(units))
+        cw_new = fits.drop_flatlined(fits.creep_windows(win_new, settings), fl,
+                                     settings["window_min"])
+        creep_parts.append(fits.creep_fits_weekly(cw_new, segments))
+        ref_bins = fits.creep_reference_bins(
+            fits.drop_flatlined(fits.creep_windows(ref_windows, settings), fl,
+                                settings["window_min"]), segments)
+        daily_parts.append(fits.creep_daily(cw_new, segments, ref_bins,
+                                            settings["load_ref_nm"]))
+        pm_parts.append(fits.power_models(ref_windows, segments))
+        del win_new, ref_windows, cw_new
+    creep_new = pl.concat(creep_parts) if creep_parts else fits.creep_fits_weekly(
+        pl.DataFrame(), segments)
+    daily = pl.concat(daily_parts) if daily_parts else fits.creep_daily(
+        pl.DataFrame(), segments, pl.DataFrame(), 1.0)
+    pm = pl.concat(pm_parts) if pm_parts else fits.power_models(pl.DataFrame(), segments)
     if not full and prev is not None and _has_view(prev, "creep_fits"):
         old = pl.from_arrow(prev.sql("SELECT * FROM creep_fits "
                                     "WHERE week_start < $f", params={"f": plan.from_day}
@@ -405,23 +480,19 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
                                  creep_new])
     else:
         creep_table = creep_new
-    ref_bins = fits.creep_reference_bins(
-        fits.drop_flatlined(fits.creep_windows(ref_windows, settings), flat,
-                            settings["window_min"]), segments)
-    daily = fits.creep_daily(cw_new, segments, ref_bins, settings["load_ref_nm"])
     con.register("creep_daily", daily.to_arrow())
     tick()
 
-    # -- efficiency and the normal-behaviour power model
-    pm = fits.power_models(ref_windows, segments)
+    # -- efficiency (normal-behaviour power model) and unit_days
     con.register("power_models", pm.to_arrow())
     run_model(con, models["efficiency"], settings, {})
     run_model(con, models["unit_days"], settings, {})
     tick()
 
-    # -- write (each table one atomic commit); DuckDB gives back its memory first, so its
-    # buffers and the Arrow copies of the lake's write do not peak together
-    con.execute(f"SET memory_limit = '{DUCKDB_WRITE_MEMORY_LIMIT}'")
+    # -- write (each table one atomic commit)
+    for view in ("motor_constants", "creep_daily", "power_models"):
+        con.unregister(view)
+    del flat, daily
     for name, src, where in (
             ("windows", "windows", ""),
             ("events", "events", "" if full else "WHERE day >= $from_day"),
@@ -455,15 +526,23 @@ def _read_state(lake) -> dict | None:
         return None   # unreadable state: rebuild everything
 
 
+def state_after(plan: AnalysisPlan) -> dict:
+    """The state a run of ``plan`` leaves for the next run (JSON-ready)."""
+    return {
+        "fingerprint": plan.fingerprint,
+        "day_counts": {d.isoformat(): n for d, n in sorted(plan.day_counts.items())},
+        "first_ts": {u: t.isoformat() for u, t in sorted(plan.first_ts.items())},
+        "resets": plan.resets,
+        "from_day": plan.from_day.isoformat() if plan.from_day else None,
+        "finished_at": dt.datetime.now(UTC).isoformat(),
+    }
+
+
 def _write_state(lake, plan: AnalysisPlan) -> None:
     p = _state_path(lake)
     p.parent.mkdir(parents=True, exist_ok=True)
     tmp = p.with_name(p.name + ".tmp")
-    tmp.write_text(json.dumps({
-        "fingerprint": plan.fingerprint, "batches": plan.batches, "resets": plan.resets,
-        "from_day": plan.from_day.isoformat() if plan.from_day else None,
-        "finished_at": dt.datetime.now(UTC).isoformat(),
-    }, indent=1), encoding="utf-8")
+    tmp.write_text(json.dumps(state_after(plan), indent=1), encoding="utf-8")
     os.replace(tmp, p)
 
 
@@ -518,8 +597,7 @@ def analyze(settings: Any, full: bool = False,
 
                 report.tables = run_analysis(con, settings, plan, write, progress, prev)
                 report.from_day, report.to_day = plan.from_day, plan.to_day
-                last = con.execute("SELECT max(day) FROM telemetry").fetchall()[0][0]
-                end = min(plan.to_day, last + dt.timedelta(days=1))
+                end = min(plan.to_day, max(plan.day_counts) + dt.timedelta(days=1))
                 report.days_recomputed = max(0, (end - plan.from_day).days)
                 report.units = con.execute(
                     "SELECT count(DISTINCT unit_id) FROM telemetry WHERE day >= $d",

@@ -43,7 +43,7 @@ def _ts(s: str) -> dt.datetime:
 def test_reports_say_what_was_done(fleet):
     a, b = fleet.first, fleet.second
     assert a.full and "first analyze" in a.reason
-    assert not b.full and "new batch" in b.reason
+    assert not b.full and "day(s) with new or changed telemetry" in b.reason
     # the second run recomputes from the Monday before the new month, not from the start
     assert b.from_day > dt.date(2026, 6, 1) and b.from_day.weekday() == 0
     assert b.days_recomputed < 45 and b.units == 8
@@ -83,6 +83,51 @@ def test_incremental_equals_full_rebuild(fleet, tables):
                                            err_msg=f"{name}.{col}")
             else:
                 assert a.to_list() == b.to_list(), f"{name}.{col}"
+
+
+def test_plan_recomputes_from_new_or_removed_days_and_whole_pauses(tmp_path):
+    import duckdb
+    from fleetwatch.analyze import plan_analysis, state_after
+
+    cfg = load_settings(tmp_path, env={})
+    t0 = dt.datetime(2026, 6, 1, tzinfo=UTC)            # a Monday
+    hours = [t0 + dt.timedelta(hours=h) for h in range(24 * 20)]       # June 1-20
+
+    def frame(rows):
+        return pl.DataFrame(rows, schema={"unit_id": pl.String,
+                                          "ts": pl.Datetime("us", "UTC")}, orient="row"
+                            ).with_columns(day=pl.col("ts").dt.date())
+
+    base = [("U1", t) for t in hours] + [("U2", t) for t in hours if t.day <= 14]
+    con = duckdb.connect()
+    con.register("telemetry", frame(base).to_arrow())
+    first = plan_analysis(con, cfg, None, False, False)
+    assert first.full and first.from_day == dt.date(2026, 6, 1)
+    state = state_after(first)
+    assert plan_analysis(con, cfg, state, False, True).empty
+    assert plan_analysis(con, cfg, state, True, True).full
+    # one new day for U1: from the Monday on or before June 20 (the day before)
+    new_day = [("U1", t0 + dt.timedelta(days=20, hours=h)) for h in range(24)]
+    con.register("telemetry", frame(base + new_day).to_arrow())
+    p = plan_analysis(con, cfg, state, False, True)
+    assert not p.full and p.from_day == dt.date(2026, 6, 15)
+    assert p.to_day == dt.date(2026, 6, 22)
+    # U2 comes back after six silent days: its pause starts on June 14
+    back = [("U2", t0 + dt.timedelta(days=20, hours=h)) for h in range(24)]
+    con.register("telemetry", frame(base + new_day + back).to_arrow())
+    assert plan_analysis(con, cfg, state, False, True).from_day == dt.date(2026, 6, 8)
+    # rows removed from June 17 also count as a change
+    gone = [r for r in base if r[1].day != 17]
+    con.register("telemetry", frame(gone).to_arrow())
+    assert plan_analysis(con, cfg, state, False, True).from_day == dt.date(2026, 6, 15)
+    # a change inside the reference period (the first 14 days) redoes it from its start
+    gone = [r for r in base if r[1].day != 10 or r[0] != "U1"]
+    con.register("telemetry", frame(gone).to_arrow())
+    assert plan_analysis(con, cfg, state, False, True).from_day == dt.date(2026, 6, 1)
+    # another window length is another analysis: everything again
+    con.register("telemetry", frame(base).to_arrow())
+    other = cfg.replace(window_min=15)
+    assert plan_analysis(con, other, state, False, True).full
 
 
 # ---------------------------------------------------------------- physics against the key
