@@ -140,6 +140,8 @@ def test_every_page_in_a_real_browser(served, shots):
         metrics = [m.split() for m in page.get_by_test_id("stMetric").all_inner_texts()]
         shown = {" ".join(m[:-1]): int(m[-1]) for m in metrics}
         assert shown == {dash.status_label(s): n for s, n in counts.items()}, metrics
+        # the table can arrive after the metrics on a busy machine: wait for it, then count
+        page.get_by_test_id("stDataFrame").first.wait_for(state="visible", timeout=60_000)
         assert page.get_by_test_id("stDataFrame").count() == 1
         assert "qualified people decide" in page.get_by_test_id("stSidebar").inner_text()
         page.screenshot(path=str(shots / "1-fleet.png"))
