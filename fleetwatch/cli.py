@@ -7,16 +7,15 @@ failures are ``FleetwatchError``s: one handler in ``main`` prints ``Error: ...``
 """
 from __future__ import annotations
 
-import json
 import sys
 from pathlib import Path
 from typing import Any, Optional
 
 import typer
 
-from . import __version__
+from . import __version__, _json
 from .config import CONFIG_FILE, find_project, load_settings, write_default_toml
-from .errors import EXIT_USAGE, FleetwatchError, UsageError
+from .errors import FleetwatchError, UsageError
 
 app = typer.Typer(
     name="fleetwatch",
@@ -45,23 +44,7 @@ def _err(msg: str) -> None:
 
 
 def _print_json(obj: Any) -> None:
-    typer.echo(json.dumps(obj, indent=2, default=_json_default))
-
-
-def _json_default(o: Any) -> Any:
-    import datetime as _dt
-    if isinstance(o, _dt.datetime):
-        if o.tzinfo is not None:
-            o = o.astimezone(_dt.timezone.utc)
-            return o.isoformat().replace("+00:00", "Z")
-        return o.isoformat()
-    if isinstance(o, (_dt.date,)):
-        return o.isoformat()
-    if isinstance(o, Path):
-        return str(o)
-    if hasattr(o, "item"):
-        return o.item()
-    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+    typer.echo(_json.dumps(obj))
 
 
 def progress_bar(description: str, enabled: bool = True):

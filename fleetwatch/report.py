@@ -19,7 +19,6 @@ import csv
 import ctypes
 import datetime as dt
 import io
-import json
 import math
 import os
 import re
@@ -35,7 +34,7 @@ from typing import Any, Callable
 
 import polars as pl
 
-from . import __version__
+from . import __version__, _json
 from . import charts as ch
 from . import views as vw
 from .errors import FleetwatchError, ReportError
@@ -254,7 +253,7 @@ def build_report(settings: Any, week: str | IsoWeek | None = None,
             timings["pdf"] = time.perf_counter() - t
             files["pdf"] = "report.pdf"
         summary["files"] = files
-        (tmp / "summary.json").write_text(json.dumps(summary, indent=2, default=_json_default)
+        (tmp / "summary.json").write_text(_json.dumps(summary)
                                           + "\n", encoding="utf-8")
         os.chmod(tmp, 0o755)
         _swap_into_place(tmp, target)
@@ -336,20 +335,6 @@ def _render_charts(data: dict[str, Any], evidence: dict[str, dict[str, Any]], wk
 
 
 # ----------------------------------------------------------------------------- outputs
-def _json_default(o: Any) -> Any:
-    if isinstance(o, dt.datetime):
-        if o.tzinfo is not None:
-            return o.astimezone(dt.timezone.utc).isoformat().replace("+00:00", "Z")
-        return o.isoformat()
-    if isinstance(o, dt.date):
-        return o.isoformat()
-    if isinstance(o, Path):
-        return str(o)
-    if hasattr(o, "item"):
-        return o.item()
-    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
-
-
 def _num(x: Any, nd: int = 1) -> float | None:
     if x is None or (isinstance(x, float) and math.isnan(x)):
         return None

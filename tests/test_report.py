@@ -19,6 +19,7 @@ from pathlib import Path
 import pytest
 
 from fleetwatch import report as rp
+from fleetwatch._json import json_default
 from fleetwatch.config import load_settings
 from fleetwatch.errors import LockHeldError, ReportError, UsageError
 from report_lake import FrameLake, synthetic_tables
@@ -189,10 +190,22 @@ def test_actions_csv_columns_order_and_plan_by(built):
         assert r["reasons"]
 
 
+def test_json_default_writes_utc_and_plain_numbers():
+    import numpy as np
+    lisbon_summer = dt.timezone(dt.timedelta(hours=1))
+    out = json.loads(json.dumps(
+        {"t": dt.datetime(2026, 7, 1, 7, 30, tzinfo=lisbon_summer), "d": dt.date(2026, 7, 1),
+         "n": np.float64(0.25), "k": np.int64(3), "p": Path("a/b")}, default=json_default))
+    assert out == {"t": "2026-07-01T06:30:00Z", "d": "2026-07-01", "n": 0.25, "k": 3,
+                   "p": str(Path("a/b"))}
+    with pytest.raises(TypeError, match="set"):
+        json.dumps({"s": {1}}, default=json_default)
+
+
 def test_summary_json(built):
     res, _, truth, *_ = built
     s = json.loads(res.paths["summary"].read_text(encoding="utf-8"))
-    assert s == json.loads(json.dumps(res.summary, default=rp._json_default))
+    assert s == json.loads(json.dumps(res.summary, default=json_default))
     assert s["schema_version"] == rp.SCHEMA_VERSION and s["week"] == "2026-W31"
     assert s["generated_at"] == "2026-08-03T06:00:00Z"
     assert dt.datetime.fromisoformat(s["generated_at"].replace("Z", "+00:00")).tzinfo
