@@ -13,8 +13,11 @@ Steps (method and limits in the README, section "Output-torque soft sensor and r
    loss mechanisms of a DC gear-motor and a friction variator (domain.md 1.2, 1.4, 2.4-2.5):
 
        P_in = c0 + P_out*(c1 + c2*ln^2 i + c3*ln i)      output power / variator efficiency
-              + c4*(T_out/i)^2 + c5*(T_out/i)           copper loss I^2*R, I ~ T_out/i + I_0
+              + (c4*(T_out/i)^2 + c5*(T_out/i))*r_T     copper loss I^2*R, I ~ T_out/i + I_0
               + c6*omega_out*i + c7*(omega_out*i)^2      no-load and drag losses ~ motor speed
+
+   r_T = R_T/R_20 = 1 + 0.00393*(T - 20) with the window's mean temperature (domain.md 1.4;
+   1 where no temperature is logged): the copper loss follows the winding's resistance.
 
    Its section at one duty is the input power as a function of ratio for that duty. A
    per-bin quadratic in the ratio alone would confound the ratio with the duty's drift
@@ -29,7 +32,9 @@ Steps (method and limits in the README, section "Output-torque soft sensor and r
    minimises the modelled input power summed over the unit's windows of that duty,
    searched only inside
    - the ratios observed for that duty (2nd-98th percentile of the windows behind the
-     advice) and inside the ratios behind the power model: never extrapolated;
+     advice) and inside the ratios behind the power model, both over all its data and near
+     this duty (the bin widened by one bin width each way): never extrapolated, in ratio
+     or in duty;
    - the motor's speed limit ``motor_n_max_rpm`` (n_in = i * n_out * i_act/i_cmd) and the
      highest terminal voltage seen on the unit (V = I*R + k_e*omega, domain.md 1.4: above
      it the supply cannot hold the speed);
@@ -47,7 +52,8 @@ Steps (method and limits in the README, section "Output-torque soft sensor and r
    (days with any window / 7) -> kWh per week. Intervals: block bootstrap over days (each
    replicate refits the power model with the day weights, re-finds the advised ratio and
    re-sums the saving; a pooled line model also resamples its units), percentiles.
-   Status: 'change' when the advised ratio differs by >= KEEP_RATIO_TOL and the interval
+   Status: 'change' when at least KEEP_HOURS_SHARE of the duty's hours run more than
+   KEEP_RATIO_TOL away from the advised ratio and the interval
    excludes zero (or the ratio used breaks a configured limit), else 'keep'; the fleet
    saving and its interval sum the 'change' rows (following 'keep' changes nothing).
 """
@@ -61,6 +67,7 @@ import numpy as np
 import polars as pl
 
 from .errors import ModelError
+from .physics import ALPHA_COPPER_PER_K
 from .models._base import MAD_TO_SIGMA, FleetModel
 from .schema import table as _schema_table
 from .softsensor import (TORQUE_ESTIMATES_COLUMNS, TorqueSoftSensor, estimate_torque,
@@ -108,11 +115,13 @@ ORDER BY unit_id, ts
 STEADY_SHARE_MIN = 0.8        # a window counts when >= 80 % of its samples are steady
 RATIO_RANGE_Q = (0.02, 0.98)  # observed ratio range of a bin: robust to a stray window
 RATIO_GRID_STEP = 0.01        # ratio search resolution
-KEEP_RATIO_TOL = 0.05         # |advised - used| below this is 'keep'
+KEEP_RATIO_TOL = 0.05         # a window within this of the advised ratio already runs it
+KEEP_HOURS_SHARE = 0.10       # 'keep' when less than this share of hours runs elsewhere
 V_MARGIN = 0.01               # voltage limit: highest window-mean voltage seen + 1 %
 EDGE_MAX_GAP_S = 3600.0       # a start/stop and its window must lie within an hour
 UNIT_MODEL_MIN_WINDOWS = 200  # own power model from this many windows and 3 ratio levels
 BOOTSTRAP_CONFIDENCE = 0.90
+SUPPORT_MIN_WINDOWS = 10      # fewest model windows near a duty to define its ratio support
 
 
 def line_of(unit_id: str) -> str:
@@ -166,14 +175,25 @@ def assign_duty_bins(frame: pl.DataFrame, per_decade: int = 10) -> pl.DataFrame:
 
 
 # ---------------------------------------------------------------- power model
-def _basis(ratio: np.ndarray, n_out_rpm: np.ndarray, t_out_nm: np.ndarray) -> np.ndarray:
+def _r_factor(temp_c: Any, shape: tuple) -> np.ndarray:
+    """Winding resistance relative to 20 degC, R_T/R_20 = 1 + 0.00393*(T - 20) (domain.md
+    1.4, annealed copper, from memory); 1 where the temperature is not logged."""
+    if temp_c is None:
+        return np.ones(shape)
+    t = np.broadcast_to(np.asarray(temp_c, float), shape)
+    return np.where(np.isfinite(t), 1.0 + ALPHA_COPPER_PER_K * (t - 20.0), 1.0)
+
+
+def _basis(ratio: np.ndarray, n_out_rpm: np.ndarray, t_out_nm: np.ndarray,
+           temp_c: Any = None) -> np.ndarray:
     w = n_out_rpm * (2.0 * np.pi / 60.0)
     ln = np.log(ratio)
     p_out = w * t_out_nm
     ti = t_out_nm / ratio
     w_in = w * ratio
+    rf = _r_factor(temp_c, np.shape(ratio))      # copper loss scales with R(T)
     return np.column_stack([np.ones_like(ratio), p_out, p_out * ln * ln, p_out * ln,
-                            ti * ti, ti, w_in, w_in * w_in])
+                            ti * ti * rf, ti * rf, w_in, w_in * w_in])
 
 
 _BASIS_NAMES = ("c0_w", "c1_p_out", "c2_p_out_ln2", "c3_p_out_ln", "c4_copper", "c5_cross",
@@ -198,10 +218,10 @@ class InputPowerModel(FleetModel):
     @staticmethod
     def _design(X: Any, groups: Any, levels: list | None) -> tuple[np.ndarray, np.ndarray]:
         a = np.asarray(X, dtype=float)
-        if a.ndim != 2 or a.shape[1] != 3:
-            raise ModelError(f"InputPowerModel needs columns (ratio, n_out_rpm, t_out_nm); got "
-                             f"shape {a.shape}")
-        B = _basis(a[:, 0], a[:, 1], a[:, 2])
+        if a.ndim != 2 or a.shape[1] not in (3, 4):
+            raise ModelError(f"InputPowerModel needs columns (ratio, n_out_rpm, t_out_nm[, "
+                             f"temp_c]); got shape {a.shape}")
+        B = _basis(a[:, 0], a[:, 1], a[:, 2], a[:, 3] if a.shape[1] == 4 else None)
         if levels and len(levels) > 1:
             g = np.asarray(groups, dtype=object)
             D = np.column_stack([(g == lv).astype(float) for lv in levels[1:]])
@@ -247,7 +267,7 @@ class InputPowerModel(FleetModel):
         """Input power in W at rows (ratio, n_out_rpm, t_out_nm)."""
         self._check_fitted()
         a = np.asarray(X, dtype=float)
-        B = _basis(a[:, 0], a[:, 1], a[:, 2])
+        B = _basis(a[:, 0], a[:, 1], a[:, 2], a[:, 3] if a.shape[1] == 4 else None)
         c = self.coef_ if coef is None else coef
         out = B @ c[: len(_BASIS_NAMES)]
         if self.levels_ and len(self.levels_) > 1 and groups is not None:
@@ -258,33 +278,40 @@ class InputPowerModel(FleetModel):
 
     def curve_many(self, ratios: np.ndarray | None, n_out_rpm: np.ndarray,
                    t_out_nm: np.ndarray, coefs: np.ndarray,
-                   ratios_w: np.ndarray | None = None) -> np.ndarray:
+                   ratios_w: np.ndarray | None = None, temp_c: Any = None) -> np.ndarray:
         """Input power for many coefficient sets: (B, W, G) on a ratio grid, or (B, W) at
-        each window's own ratio ``ratios_w``."""
+        each window's own ratio ``ratios_w``. ``temp_c``: winding temperature per window
+        (kept at another ratio: a first-order approximation)."""
         self._check_fitted()
         c = np.asarray(coefs, float)[:, : len(_BASIS_NAMES)]
         if ratios is None:
-            B = _basis(np.asarray(ratios_w, float), n_out_rpm, t_out_nm)
+            B = _basis(np.asarray(ratios_w, float), n_out_rpm, t_out_nm, temp_c)
             return c @ B.T
-        R = np.broadcast_to(np.asarray(ratios, float)[None, :], (n_out_rpm.size, ratios.size))
-        N = np.broadcast_to(np.asarray(n_out_rpm, float)[:, None], R.shape)
-        T = np.broadcast_to(np.asarray(t_out_nm, float)[:, None], R.shape)
-        B = _basis(R.ravel(), N.ravel(), T.ravel())
+        R, N, T, C = _grid_arrays(ratios, n_out_rpm, t_out_nm, temp_c)
+        B = _basis(R.ravel(), N.ravel(), T.ravel(), None if C is None else C.ravel())
         return (c @ B.T).reshape(c.shape[0], *R.shape)
 
     def curve(self, ratios: np.ndarray, n_out_rpm: np.ndarray, t_out_nm: np.ndarray,
-              coef: np.ndarray | None = None) -> np.ndarray:
-        """Input power (W) on a grid: rows = windows (n_out, t_out), columns = ratios.
+              coef: np.ndarray | None = None, temp_c: Any = None) -> np.ndarray:
+        """Input power (W) on a grid: rows = windows (n_out, t_out[, temp_c]), columns =
+        ratios.
 
         Group offsets are left out: they shift a unit's curve, not where its minimum is.
         """
         self._check_fitted()
         c = (self.coef_ if coef is None else coef)[: len(_BASIS_NAMES)]
-        R = np.broadcast_to(np.asarray(ratios, float)[None, :], (n_out_rpm.size, ratios.size))
-        N = np.broadcast_to(np.asarray(n_out_rpm, float)[:, None], R.shape)
-        T = np.broadcast_to(np.asarray(t_out_nm, float)[:, None], R.shape)
-        B = _basis(R.ravel(), N.ravel(), T.ravel())
+        R, N, T, C = _grid_arrays(ratios, n_out_rpm, t_out_nm, temp_c)
+        B = _basis(R.ravel(), N.ravel(), T.ravel(), None if C is None else C.ravel())
         return (B @ c).reshape(R.shape)
+
+
+def _grid_arrays(ratios, n_out_rpm, t_out_nm, temp_c):
+    n_out_rpm = np.asarray(n_out_rpm, float)
+    R = np.broadcast_to(np.asarray(ratios, float)[None, :], (n_out_rpm.size, np.size(ratios)))
+    N = np.broadcast_to(n_out_rpm[:, None], R.shape)
+    T = np.broadcast_to(np.asarray(t_out_nm, float)[:, None], R.shape)
+    C = None if temp_c is None else np.broadcast_to(np.asarray(temp_c, float)[:, None], R.shape)
+    return R, N, T, C
 
 
 def _robust_sigma(resid: np.ndarray) -> float:
@@ -473,6 +500,8 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
         pl.col("window_start").dt.convert_time_zone("UTC").dt.date().alias("_day"),
         (pl.col("p_in_mean") / pl.col("i_in_mean")).alias("_v"),
         pl.col("standstill").fill_null(False),
+        (pl.col("temp_mean").cast(pl.Float64) if "temp_mean" in f.columns
+         else pl.lit(None, dtype=pl.Float64)).fill_null(float("nan")).alias("_temp"),
     )
     f = assign_duty_bins(f, per_decade)
     rng = np.random.default_rng(random_state)
@@ -480,7 +509,7 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
     models: dict[str, tuple[InputPowerModel, pl.DataFrame, str]] = {}
 
     def xy(d: pl.DataFrame):
-        return (d.select("ratio", "n_out_mean", "t_out").to_numpy().astype(float),
+        return (d.select("ratio", "n_out_mean", "t_out", "_temp").to_numpy().astype(float),
                 d["p_in_mean"].to_numpy().astype(float), d["unit_id"].to_numpy())
 
     # power models: own where a unit has enough, else its line's (pooled, per-unit level)
@@ -606,6 +635,14 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
         if lo < mlo or hi > mhi:
             why.append("model_range")
             lo, hi = max(lo, mlo), min(hi, mhi)
+        # never extrapolate the power model in duty either: the advised ratio must lie
+        # among the ratios its data ran at near this duty (this bin and the next R-series
+        # step around it). Matters for pooled bins, where the line's windows may show a
+        # ratio this unit's model never saw near this duty.
+        slo, shi = _support_range(mdata, nlo, nhi, tlo, thi, u if mbasis == "unit" else None)
+        if lo < slo or hi > shi:
+            why.append("model_support")
+            lo, hi = max(lo, slo), min(hi, shi)
         if standstill and hi > max_start_ratio:
             why.append("start_ratio")
             hi = min(hi, max_start_ratio)
@@ -614,7 +651,7 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
                 f"the ratios observed for this duty are steeper than max_start_ratio = "
                 f"{max_start_ratio:g} and the duty starts from standstill"
                 if "start_ratio" in why else "observed ratios lie outside the power model's "
-                "range"))
+                "range (ratios its data ran at near this duty)"))
             continue
         grid = np.unique(np.round(np.r_[np.arange(lo, hi + 1e-9, RATIO_GRID_STEP), lo, hi], 6))
         win = {"n_out": own["n_out_mean"].to_numpy().astype(float),
@@ -622,7 +659,8 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
                "slip_factor": own["slip_factor"].to_numpy().astype(float),
                "k_e": own["k_e"].to_numpy().astype(float),
                "i0_a": own["i0_a"].to_numpy().astype(float),
-               "r_ohm": own["r_ohm"].cast(pl.Float64).to_numpy()}
+               "r_ohm": own["r_ohm"].cast(pl.Float64).to_numpy(),
+               "temp": own["_temp"].to_numpy().astype(float)}
         v_seen = v_max_seen.get(u)
         ok, why_m, broken = _feasible(grid, r_used_w, win, sensor, lim,
                                       np.nan if v_seen is None else float(v_seen) * (1 + V_MARGIN))
@@ -633,7 +671,7 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
             rows.append(empty("no ratio inside the observed range keeps the motor inside its "
                               f"limits ({', '.join(why_m)})"))
             continue
-        P = model.curve(grid, win["n_out"], win["t_out"])
+        P = model.curve(grid, win["n_out"], win["t_out"], temp_c=win["temp"])
         k = _best(P, dur, ok)
         r_adv = float(grid[k])
         dp = _diag_power(model, r_used_w, win) - P[:, k]
@@ -643,18 +681,24 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
         coefs, bw = boot_of(model, mdata)
         day_idx = np.array([bw["days"][dd] for dd in own["_day"].to_list()])
         dw = bw["counts"][:, day_idx]                                   # (B, W)
-        Pb = model.curve_many(grid, win["n_out"], win["t_out"], coefs)  # (B, W, G)
+        Pb = model.curve_many(grid, win["n_out"], win["t_out"], coefs,
+                              temp_c=win["temp"])                       # (B, W, G)
         tot = np.einsum("bwg,w->bg", Pb, dur)
         kb = np.argmin(np.where(ok[None, :], tot, np.inf), axis=1)
-        pub = model.curve_many(None, win["n_out"], win["t_out"], coefs, ratios_w=r_used_w)
+        pub = model.curve_many(None, win["n_out"], win["t_out"], coefs, ratios_w=r_used_w,
+                               temp_c=win["temp"])
         p_adv_b = np.take_along_axis(Pb, kb[:, None, None].repeat(Pb.shape[1], 1), 2)[:, :, 0]
         reps = ((pub - p_adv_b) * dur[None, :] * dw).sum(axis=1) / 1000.0 / wk
         lo_i, hi_i = (float(v) for v in np.quantile(reps, [alpha, 1 - alpha]))
+        # share of the duty's hours not already run at the advised ratio: a duty run partly
+        # at another ratio (an old recipe, another shift) has something to gain even when
+        # its typical (median) ratio is the advised one
+        off_share = float(dur[np.abs(r_used_w - r_adv) >= KEEP_RATIO_TOL].sum() / dur.sum())
         if broken:
             status = "change"
             note = (f"the ratio used breaks the {', '.join(broken)} limit at times; "
                     f"run this duty at ratio {r_adv:.2f} (modelled saving {saving_w:+.1f} W)")
-        elif abs(r_adv - base["ratio_used"]) < KEEP_RATIO_TOL:
+        elif off_share < KEEP_HOURS_SHARE:
             status, note = "keep", "already at the least-power ratio for this duty"
         elif kwh <= 0:
             status, note = "keep", ("no saving: the least-power ratio every window of this "
@@ -664,8 +708,14 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
                                     f"{lo_i:.3f} .. {hi_i:.3f} kWh/week)")
         else:
             status = "change"
-            note = (f"run this duty at ratio {r_adv:.2f} instead of {base['ratio_used']:.2f} "
-                    f"(motor at about {r_adv * float(np.median(win['n_out'])):.0f} rpm)")
+            if abs(r_adv - base["ratio_used"]) >= KEEP_RATIO_TOL:
+                note = (f"run this duty at ratio {r_adv:.2f} instead of "
+                        f"{base['ratio_used']:.2f} (motor at about "
+                        f"{r_adv * float(np.median(win['n_out'])):.0f} rpm)")
+            else:   # mostly run right already; the rest of its hours run elsewhere
+                note = (f"run all of this duty at ratio {r_adv:.2f}: {100 * off_share:.0f} % "
+                        f"of its hours run at other ratios ({r_used_w.min():.2f} .. "
+                        f"{r_used_w.max():.2f}), e.g. from another recipe or shift")
         if mbasis == "line":
             note += "; power model pooled with the line's units"
         if status == "change":   # the fleet saving counts the advice that changes something
@@ -691,12 +741,31 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
     return advice, extra
 
 
+def _support_range(mdata: pl.DataFrame, nlo: float, nhi: float, tlo: float, thi: float,
+                   unit: str | None) -> tuple[float, float]:
+    """Ratio range (RATIO_RANGE_Q) of the power model's windows near one duty bin.
+
+    Near: output speed and torque within the bin widened by one bin width on each side
+    (same ratio of edges, so it works on any series). ``unit``: only that unit's windows.
+    Returns (inf, -inf) with fewer than SUPPORT_MIN_WINDOWS windows.
+    """
+    fn, ft = nhi / nlo, thi / tlo
+    d = mdata.filter((pl.col("n_out_mean") >= nlo / fn) & (pl.col("n_out_mean") < nhi * fn)
+                     & (pl.col("t_out") >= tlo / ft) & (pl.col("t_out") < thi * ft))
+    if unit is not None:
+        d = d.filter(pl.col("unit_id") == unit)
+    if d.height < SUPPORT_MIN_WINDOWS:
+        return float("inf"), float("-inf")
+    q = np.quantile(d["ratio"].to_numpy().astype(float), RATIO_RANGE_Q)
+    return float(q[0]), float(q[1])
+
+
 def _diag_power(model: InputPowerModel, ratios: np.ndarray, win: dict,
                 coef: np.ndarray | None = None) -> np.ndarray:
     """Modelled input power of each window at its own ratio (no group offset)."""
-    X = np.column_stack([ratios, win["n_out"], win["t_out"]])
     c = model.coef_ if coef is None else coef
-    return _basis(X[:, 0], X[:, 1], X[:, 2]) @ c[: len(_BASIS_NAMES)]
+    return _basis(np.asarray(ratios, float), win["n_out"], win["t_out"],
+                  win["temp"]) @ c[: len(_BASIS_NAMES)]
 
 
 _PL_TYPES = {"VARCHAR": pl.Utf8, "DOUBLE": pl.Float64, "BIGINT": pl.Int64,

@@ -21,8 +21,17 @@ Same arguments, same bytes (deterministic for a seed).
 Model, per sample (period ``period_s``), see domain.md for the formulas:
 
 1. Schedule: weekday shifts 06-22 h UTC (plant time = UTC) with breaks and unplanned stops,
-   idle nights and weekends (n_in = 0, I = 0). While running, the ratio set point and the
-   load change every ~45 min; a few set points are changed while the drive stands still.
+   idle nights and weekends (n_in = 0, I = 0). While running, the product (a recipe: ratio
+   set point, motor speed set point 1150-1450 rpm) and the load change every ~45 min; a few
+   set points are changed while the drive stands still.
+   Recipes: about half the units (``UNTUNED_SHARE``) also run each product on an old,
+   untuned recipe part of the time: a shallower ratio (0.5-0.8 of the tuned one) with the
+   motor slowed to the same output speed and torque, so more motor torque, current and
+   copper loss. Some of them run one product steeper than ``MAX_START_RATIO``: the drive
+   shifts down to the product's old ratio while running down before a stop, starts in it
+   and keeps it until the next set-point change. The answer key's ``recipes`` entry gives
+   per unit the products' ratios, their least-power ratio and the true weekly saving of
+   running every product there (``true_operating_point`` is the physics).
 2. Variator: the actuator puts the wheel at ``cone_position(i_cmd)`` of the nominal cones plus
    a per-unit position offset (and the actuator fault's lost steps); the real cones (with
    manufacturing spread) give the kinematic ratio ``cone_ratio``. The load is an output
@@ -66,7 +75,8 @@ __all__ = [
     "simulate_fleet", "SimulationResult", "write_sample_data", "SAMPLE_ARGS", "CONDITIONS",
     "LINES", "PLANT_NAME", "TELEMETRY_COLUMNS", "MAINTENANCE_COLUMNS", "SCHEMA_VERSION",
     "DEFAULT_UNITS", "DEFAULT_DAYS", "DEFAULT_PERIOD_S", "DEFAULT_SEED", "DEFAULT_START",
-    "SLIP_LIMIT", "LOAD_REF_NM", "GROSS_SLIP_LIMIT", "MAX_START_RATIO",
+    "SLIP_LIMIT", "LOAD_REF_NM", "GROSS_SLIP_LIMIT", "MAX_START_RATIO", "UNTUNED_SHARE",
+    "STEEP_RECIPE_RATIOS", "true_operating_point",
     "MAPPING_TOML", "MAINTENANCE_MAPPING_TOML", "fault_plan",
 ]
 
@@ -151,6 +161,19 @@ STEEP_START_RATIOS = (3.2, 3.8)
 LOAD_CAP = 3.9             # cap on tau * (1 + i): keeps healthy contacts well below the peak
 LOAD_CAP_SPIKE = 4.6
 LOAD_MAX_NM = 1.9          # highest tau: steady current stays below the 8 A stall threshold
+# Untuned recipes (set points chosen once and never tuned): on about half the units each
+# product also has an old recipe that runs it at a shallower ratio with the motor slowed down
+# to the same output speed (same output torque, so more motor torque and current). A share
+# of the product's runs uses the old recipe. Some of these units run one product in a steep
+# ratio above MAX_START_RATIO; the drive cannot start there, so it shifts down to that
+# product's old (shallower) ratio while running down before a stop, starts in it, and runs
+# in it until the next set-point change.
+UNTUNED_SHARE = 0.5                      # share of units with untuned recipes
+UNTUNED_FACTOR = (0.5, 0.8)              # old ratio / tuned ratio of a product
+UNTUNED_USE = (0.3, 0.7)                 # share of a product's runs on the old recipe
+STEEP_RECIPE_RATIOS = np.round(np.arange(3.2, 3.6001, 0.1), 2)
+STEEP_PRODUCT_P = 0.7                    # chance an untuned unit runs one steep product
+RUNDOWN_SHIFT_S = 150.0                  # shift down to the start ratio this long before a stop
 
 
 # ---------------------------------------------------------------- results and plans
@@ -177,6 +200,7 @@ class _UnitPlan:
     line: str
     condition: str
     instrumented: bool
+    untuned: bool = False
 
 
 @dataclass
@@ -257,6 +281,17 @@ def _layout(units: int, rng: np.random.Generator) -> list[_UnitPlan]:
         start += count
     return [_UnitPlan(k, names[k][0], names[k][1], conditions[k], k in instrumented)
             for k in range(units)]
+
+
+def _choose_untuned(plans: list[_UnitPlan], seed: int) -> None:
+    """Mark about half the units (at least one) as running untuned recipes.
+
+    Drawn from a stream of its own, so the rest of the fleet's draws do not change.
+    """
+    rng = np.random.default_rng(np.random.SeedSequence([seed, 4]))
+    k = max(1, round(len(plans) * UNTUNED_SHARE))
+    for pos in rng.permutation(len(plans))[:k]:
+        plans[int(pos)].untuned = True
 
 
 # ---------------------------------------------------------------- argument checks
@@ -430,6 +465,77 @@ def _unit_params(rng: np.random.Generator) -> dict:
     }
 
 
+def _recipe_tuning(recipes: np.ndarray, untuned: bool,
+                   rng: np.random.Generator) -> dict[str, np.ndarray]:
+    """Per product: tuned ratio, old-recipe ratio and the share of runs on the old recipe.
+
+    Tuned units: old = tuned, share 0. Untuned units: old = tuned * U(UNTUNED_FACTOR),
+    rounded to 0.1, at least 0.5 and at most MAX_START_RATIO; with chance STEEP_PRODUCT_P
+    the steepest product is replaced by one from STEEP_RECIPE_RATIOS.
+    """
+    tuned = recipes.astype(float).copy()
+    if not untuned:
+        return {"ratio_tuned": tuned, "ratio_old": tuned.copy(),
+                "old_share": np.zeros(tuned.size)}
+    if rng.random() < STEEP_PRODUCT_P:
+        tuned[-1] = float(rng.choice(STEEP_RECIPE_RATIOS))
+    factor = rng.uniform(*UNTUNED_FACTOR, tuned.size)
+    old = np.clip(np.round(tuned * factor, 1), 0.5, MAX_START_RATIO)
+    share = rng.uniform(*UNTUNED_USE, tuned.size)
+    share = np.where(old < tuned - 0.05, share, 0.0)
+    old = np.where(share > 0, old, tuned)
+    return {"ratio_tuned": tuned, "ratio_old": old, "old_share": share}
+
+
+def _energy_truth(p: dict, n_out: np.ndarray, t_out: np.ndarray, sp: np.ndarray,
+                  rec: np.ndarray, temp: np.ndarray, tuning: dict, hours: float,
+                  weeks: float) -> dict[str, Any]:
+    """True input energy of steady running and the true saving of the least-power ratios.
+
+    ``n_out``, ``t_out``, ``sp``, ``rec`` (product index), ``temp``: noise-free values of
+    the steady logged samples (or an even subsample of them standing for ``hours`` of
+    running). For each sample the least-power ratio is searched on a 0.01 grid between
+    the product's old and tuned ratios, at most MAX_START_RATIO (every product starts
+    from standstill), where the motor stays inside its supply voltage and current limit.
+    Healthy physics (``_steady_state``). ``weeks``: days with any logged sample / 7 (the
+    advisor's "per week"). Returns kWh per week and per-product optima.
+    """
+    out: dict[str, Any] = {"steady_hours_per_week": round(hours / weeks, 3)}
+    if sp.size == 0:
+        out.update(input_kwh_per_week=0.0, true_saving_kwh_per_week=0.0, true_saving_pct=0.0,
+                   products=[])
+        return out
+    used = _steady_state(p, n_out, t_out, sp, temp)["p_in_w"]
+    best = used.copy()
+    products = []
+    t_r, o_r = tuning["ratio_tuned"], tuning["ratio_old"]
+    for k in range(t_r.size):
+        m = rec == k
+        lo, hi = min(t_r[k], o_r[k]), min(max(t_r[k], o_r[k]), MAX_START_RATIO)
+        entry = {"ratio_tuned": round(float(t_r[k]), 2), "ratio_old": round(float(o_r[k]), 2),
+                 "old_share": round(float(tuning["old_share"][k]), 3),
+                 "steady_share": round(float(m.mean()), 4)}
+        if m.any() and hi > lo + 1e-9:
+            grid = np.round(np.arange(lo, hi + 1e-9, 0.01), 2)
+            st = _steady_state(p, n_out[m, None], t_out[m, None], grid[None, :],
+                               temp[m, None])
+            pg = np.where(st["feasible"], st["p_in_w"], np.inf)
+            low = pg.min(axis=1)
+            # a sample at a steep tuned ratio (above the start limit) may need less than
+            # any startable ratio: its "saving" is then negative, as following it would be
+            best[m] = np.where(np.isfinite(low), low, used[m])
+            tot = pg.sum(axis=0)
+            entry["least_power_ratio"] = float(grid[int(np.argmin(tot))])
+        products.append(entry)
+    scale = hours / sp.size / 1000.0 / weeks          # W per sample -> kWh per week
+    e_in = float(used.sum() * scale)
+    save = float((used - best).sum() * scale)
+    out.update(input_kwh_per_week=round(e_in, 4), true_saving_kwh_per_week=round(save, 4),
+               true_saving_pct=round(100.0 * save / e_in, 3) if e_in > 0 else 0.0,
+               products=products)
+    return out
+
+
 def _weekday_morning(grid: _Grid, day: float, rng: np.random.Generator) -> int:
     """Seconds since start of a weekday at 05:00-05:50, on or after ``day``."""
     d = int(math.ceil(day))
@@ -444,10 +550,13 @@ def _first_running_at_or_after(run: np.ndarray, k: int) -> Optional[int]:
 
 
 def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
-                   line_ambient_c: float) -> _UnitOut:
+                   line_ambient_c: float,
+                   tune_rng: Optional[np.random.Generator] = None) -> _UnitOut:
     n, per = grid.n, float(grid.period_s)
     days = grid.days
     p = _unit_params(rng)
+    if tune_rng is None:
+        tune_rng = np.random.default_rng(0)
     t_s = grid.t_s.astype(np.float64)
     t_day = t_s / 86400.0
     cond = plan.condition
@@ -465,10 +574,16 @@ def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
     change_idx = change_idx[change_idx < n]
     seg = np.searchsorted(change_idx, np.arange(n), side="right")
     n_seg = change_idx.size + 1
-    seg_ratio = recipes[rng.choice(n_rec, size=n_seg, p=rec_w)]
+    seg_rec = rng.choice(n_rec, size=n_seg, p=rec_w)        # product run in each segment
     seg_load = np.clip(p["load_median_nm"] * np.exp(rng.normal(0.0, 0.35, n_seg)), 0.35, 2.0)
     seg_nset = np.round(rng.uniform(1150.0, 1450.0, n_seg), -1)
-    sp = seg_ratio[seg][_ffill_index(run)]
+    # recipes: per product the tuned ratio and, on untuned units, the old one and its share
+    tuning = _recipe_tuning(recipes, plan.untuned, tune_rng)
+    ratio_t, ratio_u, use_u = tuning["ratio_tuned"], tuning["ratio_old"], tuning["old_share"]
+    seg_old = tune_rng.random(n_seg) < use_u[seg_rec]
+    ffill_run = _ffill_index(run)
+    rec_at = seg_rec[seg][ffill_run]          # product per sample (held while stopped)
+    old_at = seg_old[seg][ffill_run]          # old recipe in use per sample
 
     # a few set points changed while the drive stands still
     starts, stops = _edges(run)
@@ -480,9 +595,29 @@ def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
         if b - a < 3:
             continue
         c = int(rng.integers(a + 1, b - 1))
-        other = recipes[recipes != sp[a]]
+        other = np.flatnonzero(np.arange(n_rec) != rec_at[a])
         if other.size:
-            sp[c:b] = rng.choice(other)
+            rec_at[c:b] = rng.choice(other)
+            old_at[c:b] = tune_rng.random() < use_u[rec_at[c]]
+    sp = np.where(old_at, ratio_u[rec_at], ratio_t[rec_at])
+
+    # a drive cannot start in a steep ratio: where a product runs steeper than
+    # MAX_START_RATIO, the drive shifts down to that product's old ratio while running down
+    # before the stop (the ratio only changes while the cones turn), starts in it and keeps
+    # it until the next set-point change
+    k_shift = max(1, math.ceil(RUNDOWN_SHIFT_S / per))
+    for s0 in starts:
+        s0 = int(s0)
+        if sp[s0] <= MAX_START_RATIO + 1e-9:
+            continue
+        same = sp == sp[s0]
+        b0 = s0 - int(np.argmin(same[s0::-1])) + 1 if not same[: s0 + 1].all() else 0
+        b1 = s0 + int(np.argmin(same[s0:])) if not same[s0:].all() else n
+        prev = stops[stops <= s0]
+        lo = max(b0, int(prev[-1]) - k_shift) if prev.size else b0
+        old_at[lo:b1] = True
+        sp[lo:b1] = ratio_u[rec_at[lo:b1]]
+    prod_at = ratio_t[rec_at]                 # the product's tuned ratio: fixes its duty
 
     # --- stalled starts at steep ratios (stall unit, after onset)
     stall = np.zeros(n, dtype=bool)
@@ -651,8 +786,12 @@ def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
     i_kin = r_out / r_in
     eta_c = p["eta_c0"] - 0.035 * np.log(i_kin) ** 2
 
-    # --- load: output torque of a near-constant-power process, tau = T_out / i_cmd
-    tau = np.minimum(seg_load[seg], LOAD_CAP / (1.0 + sp))
+    # --- load: output torque of a near-constant-power process, tau = T_out / i_cmd.
+    # A product's duty (output speed and torque) is set at its tuned ratio; an old recipe
+    # runs the same duty at a shallower ratio: m = i_tuned / i_cmd times the torque per unit
+    # ratio, the motor speed set point divided by m.
+    m_old = prod_at / sp
+    tau = np.minimum(seg_load[seg] * m_old, LOAD_CAP / (1.0 + sp))
     tau = tau * (1.0 + _ar1(rng, n, per, 600.0, 0.06))
     spikes = rng.choice(n, size=int(rng.poisson(2.0 * days)), replace=False) if n > 10 else []
     tau[spikes] *= rng.uniform(1.2, 1.5, len(spikes))
@@ -681,7 +820,7 @@ def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
     i_a = np.where(stall, p["current_limit_a"] * (1.0 + 0.01 * rng.standard_normal(n)), i_a)
     on = run | stall
     i_a = np.where(on, i_a, 0.0)
-    omega_set = ph.omega_from_rpm(seg_nset[seg])
+    omega_set = ph.omega_from_rpm(seg_nset[seg] / m_old)
     ambient = (line_ambient_c + 2.0 * np.sin(2 * np.pi * (t_day - 0.375))
                + 1.5 * np.sin(2 * np.pi * t_day / 23.0 + rng.uniform(0, 6.3)))
     omega1 = np.where(run, np.minimum(omega_set, (v_max - i_a * r20 * 1.2) / k_e), 0.0)
@@ -741,6 +880,16 @@ def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
             logged[a:b] = False
             gap_list.append((a, b))
 
+    # --- true energy and saving of the recipes (noise-free duty of steady logged samples)
+    ok_e = steady & logged & ~gross & ~stall & np.isfinite(t_out)
+    idx_e = np.flatnonzero(ok_e)
+    days_e = np.unique(grid.day[logged]).size      # per calendar week of logs, as advise()
+    hours_e = idx_e.size * per / 3600.0
+    if idx_e.size > 20000:                    # an even subsample keeps this cheap
+        idx_e = idx_e[np.linspace(0, idx_e.size - 1, 20000).astype(np.int64)]
+    energy = _energy_truth(p, n_out[idx_e], t_out[idx_e], sp[idx_e], rec_at[idx_e],
+                           temp[idx_e], tuning, hours_e, max(days_e, 1) / 7.0)
+
     # --- noise-free daily truth
     noon = np.minimum(((np.arange(days) * 86400 + 43200) // grid.period_s).astype(int), n - 1)
     slip_ref = _noise_free_slip_at_ref(use_r, use_w, p, f_n[noon], mu_f[noon], dx_f[noon])
@@ -797,6 +946,7 @@ def _simulate_unit(plan: _UnitPlan, grid: _Grid, rng: np.random.Generator,
         "ratio_usage": {"ratios": [float(r) for r in use_r],
                         "weights": [round(float(w) / float(use_w.sum()), 5) for w in use_w]},
         "baseline_slip_at_ref": round(base_slip, 5),
+        "recipes": {"tuning": "untuned" if plan.untuned else "tuned", **energy},
         "fault": truth_fault,
         "events": {
             "gross_slip_samples": int((gross & logged).sum()),
@@ -929,6 +1079,7 @@ def simulate_fleet(out_dir: str | Path, units: int = DEFAULT_UNITS, days: int = 
     grid = _Grid(start_dt, days, period, int(n), t_s, t_s // 86400, start_d.weekday())
     fleet_rng = np.random.default_rng(np.random.SeedSequence([seed, 0]))
     plans = _layout(units, fleet_rng)
+    _choose_untuned(plans, seed)
     line_ambient = {ln: float(fleet_rng.uniform(19.0, 25.0)) for ln in LINES}
     months = _month_ranges(grid)
     lines_used = [ln for ln in LINES if any(pl_.line == ln for pl_ in plans)]
@@ -938,7 +1089,8 @@ def simulate_fleet(out_dir: str | Path, units: int = DEFAULT_UNITS, days: int = 
     results: list[_UnitOut] = []
     for plan in plans:
         rng = np.random.default_rng(np.random.SeedSequence([seed, 1, plan.index]))
-        results.append(_simulate_unit(plan, grid, rng, line_ambient[plan.line]))
+        tune_rng = np.random.default_rng(np.random.SeedSequence([seed, 5, plan.index]))
+        results.append(_simulate_unit(plan, grid, rng, line_ambient[plan.line], tune_rng))
         done += 1
         if progress:
             progress(done, total_steps)
@@ -1030,6 +1182,15 @@ def simulate_fleet(out_dir: str | Path, units: int = DEFAULT_UNITS, days: int = 
             "r_ohm": "armature resistance at 20 degC, ohm (rises 0.393 %/K with winding "
                      "temperature)",
             "k_e": "back-EMF constant referred to the variator input shaft, V*s/rad",
+            "recipes": "tuning 'untuned': part of each product's runs use an old recipe "
+                       "(ratio_old, the motor slowed to the same output speed and torque); "
+                       "old_share of its segments. products steeper than max_start_ratio "
+                       "start in ratio_old. true_saving_kwh_per_week: noise-free input "
+                       "energy of steady logged running at the ratios used minus at each "
+                       "sample's least-power ratio between ratio_old and min(ratio_tuned, "
+                       "max_start_ratio), within supply voltage and current limit, healthy "
+                       "physics (true_operating_point); weeks = days with any logged sample / 7; "
+                       "least_power_ratio: the best single ratio for the product's samples",
         },
         "counts": {"units": units, "faulty": units - by_cond["healthy"],
                    "by_condition": by_cond},
@@ -1080,6 +1241,13 @@ def true_operating_point(answer_key: Any, unit_id: str, n_out_rpm: Any, t_out_nm
     if index is None:
         raise KeyError(f"unit {unit_id!r} is not in the answer key")
     p = _unit_params(np.random.default_rng(np.random.SeedSequence([int(key["seed"]), 1, index])))
+    return _steady_state(p, n_out_rpm, t_out_nm, ratio, temp_c)
+
+
+def _steady_state(p: dict, n_out_rpm: Any, t_out_nm: Any, ratio: Any,
+                  temp_c: Any) -> dict[str, np.ndarray]:
+    """Noise-free steady state of a healthy unit with parameters ``p`` (see
+    ``true_operating_point``)."""
     n_out, t_out, i_cmd, temp = np.broadcast_arrays(*(np.asarray(a, dtype=float) for a in
                                                       (n_out_rpm, t_out_nm, ratio, temp_c)))
     x = np.clip(ph.cone_position(i_cmd, R_SMALL_M, R_LARGE_M, CONE_LENGTH_M) + p["dx_m"],

@@ -1,20 +1,22 @@
 """Ratio advisor (fleetwatch.advisor): motor relations, duty bins, limits, accuracy, savings.
 
 Truth is the simulator's own physics, ``fleetwatch.simulate.true_operating_point`` (input
-power, motor voltage and current of a healthy simulated drive at any duty and ratio).
+power, motor voltage and current of a healthy simulated drive at any duty and ratio), and
+the answer key's ``recipes`` entry (true saving of running every product at its
+least-power ratio).
 
 Two kinds of fleet:
 
 - ``physics_fleet``: steady windows built from that physics with the ratio for each duty
-  varied widely on purpose, so that running at the wrong ratio costs something. Here the
-  issue's targets are checked as stated: advised ratio within 0.1 of the true least-power
-  ratio, weekly saving within 20 % of the true saving.
-- ``sim``: a small fleet through simulate -> ingest -> analyze -> advise. Its operators run
-  each duty close to the least-power ratio already (the near-constant-power load and the
-  voltage-limited motor speed put the optimum where they run), so the true saving is about
-  0.03 % of the input energy: the 20 % target is below what any data-driven model resolves
-  there, and the test checks the saving against an absolute floor instead (see
-  the README, "Output-torque soft sensor and ratio advisor", "Limits").
+  varied widely on purpose (6 ratios per duty).
+- ``sim``: a small fleet (6 drives, 28 days) through simulate -> ingest -> analyze ->
+  advise. About half its units run old, untuned recipes for part of the time (a shallower
+  ratio with the motor slowed to the same output speed), and some products run steeper
+  than ``max_start_ratio`` and are started in a shallower ratio. The issue's targets are
+  checked here: advised ratio within 0.1 of the true least-power ratio for bins with enough
+  data, weekly saving within 20 % of the true saving, no advice outside the observed
+  ratios, the starting-ratio limit honoured (see the README, "Output-torque soft sensor and
+  ratio advisor").
 """
 from __future__ import annotations
 
@@ -74,8 +76,12 @@ def bin_truth(key, row, windows, max_start_ratio, weeks, motor_i_max_a=10.0,
             "saving_true_adv_kwh_week": (p_used - tot[ka]) / 1000.0 / weeks}
 
 
-def _truth_table(key, advice, windows, max_start_ratio):
-    days = dict(windows.group_by("unit_id").agg(pl.col("_day").n_unique()).iter_rows())
+def _truth_table(key, advice, windows, max_start_ratio, days=None):
+    """bin_truth for every advised row. ``days``: days of data per unit, the denominator of
+    "per week" (as advise() takes it: days with any window in the lake); default: days
+    with a steady window in ``windows``."""
+    if days is None:
+        days = dict(windows.group_by("unit_id").agg(pl.col("_day").n_unique()).iter_rows())
     out = []
     for row in advice.filter(pl.col("ratio_advised").is_not_null()).iter_rows(named=True):
         tr = bin_truth(key, row, windows, max_start_ratio, days[row["unit_id"]] / 7.0)
@@ -315,6 +321,15 @@ def sim(tmp_path_factory):
     return settings, result, key
 
 
+def _lake_days(settings):
+    """Days with any window per unit: advise()'s denominator of "per week"."""
+    from fleetwatch.lake import Lake
+
+    w = Lake.from_settings(settings).read("windows")
+    return dict(w.with_columns(pl.col("unit_id").cast(pl.Utf8)).group_by("unit_id")
+                .agg(pl.col("day").n_unique()).iter_rows())
+
+
 def test_softsensor_holdout_error_in_simulated_fleet(sim):
     _, res, key = sim
     instrumented = sorted(u for u, t in key["units"].items() if t["instrumented"])
@@ -348,55 +363,128 @@ def test_no_advice_outside_observed_ratios_simulated_fleet(sim):
     assert (thin["status"] == "no_advice").all()
 
 
-def test_advice_near_true_optimum_on_healthy_simulated_units(sim):
-    """On the simulated fleet the ratio effect inside one duty is about 1 % of the power and
-    the process runs each duty near its best ratio, so the optimum is only defined where
-    the true power changes by >= 1 % over the observed range. There, with the unit's own
-    windows behind the advice, the issue's 0.1 holds; everywhere the advice may cost at
-    most 3 % of the duty's power (pooled line bins compare different drives, see
-    the README, "Output-torque soft sensor and ratio advisor")."""
+def _healthy_physics_units(key):
+    """Units whose power physics is the healthy one of true_operating_point: healthy units
+    and the stall unit (its fault is stalled starts, not a changed drive). Wear,
+    contamination, actuator and sensor faults change the slip, the ratio or the logged
+    speed, so the healthy truth does not hold for them."""
+    return [u for u, t in key["units"].items() if t["condition"] in ("healthy", "stall")]
+
+
+def _ratio_levels(windows):
+    """Ratio levels (0.1 apart) with at least 5 of the unit's own windows, per duty bin."""
+    return (windows.with_columns(pl.col("ratio").round(1).alias("_lv"))
+            .group_by("unit_id", "n_out_lo_rpm", "t_out_lo_nm", "_lv").len()
+            .filter(pl.col("len") >= 5)
+            .group_by("unit_id", "n_out_lo_rpm", "t_out_lo_nm").agg(pl.len().alias("levels")))
+
+
+def test_simulated_fleet_has_untuned_recipes_with_a_true_saving(sim):
+    """The premise of the accuracy tests below: some simulated units run duties off their
+    least-power ratio (old recipes), and the answer key records the true saving."""
+    _, _, key = sim
+    rec = {u: t["recipes"] for u, t in key["units"].items()}
+    untuned = [u for u, r in rec.items() if r["tuning"] == "untuned"]
+    assert len(untuned) >= 2
+    assert all(rec[u]["true_saving_kwh_per_week"] == 0.0 for u in rec if u not in untuned)
+    pct = [rec[u]["true_saving_pct"] for u in untuned]
+    assert min(pct) > 0.5 and max(pct) < 10.0       # a few per cent of the input energy
+    # the least-power ratio of an old recipe's product lies between the old and tuned ratio
+    for u in untuned:
+        for p in rec[u]["products"]:
+            if "least_power_ratio" in p:
+                assert p["ratio_old"] - 1e-9 <= p["least_power_ratio"] <= min(
+                    p["ratio_tuned"], 3.0) + 1e-9
+
+
+def test_advised_ratio_within_0_1_of_true_optimum_simulated_fleet(sim):
+    """Issue target on the simulated fleet, through simulate -> ingest -> analyze -> advise.
+
+    "Bins with enough data": the unit's own windows (>= advice_min_windows) at three or
+    more ratio levels (0.1 apart, >= 5 windows each), so that the data, not the model's
+    shape alone, place the minimum; and a true power curve that is not flat (it changes by
+    >= 1 % over the search range, else every ratio in it is the optimum within noise).
+    Everywhere else the advice may miss the optimum by more (the minimum between two ratio
+    clusters is placed by the model's shape; a pooled bin is searched only where the unit's
+    own model has data), but may cost at most 5 % of the duty's power against the true
+    optimum over the whole observed range (measured: 4.6 %, 1.5 %, 1.5 % on seeds 3, 4, 9;
+    median 0)."""
     settings, res, key = sim
-    healthy = [u for u, t in key["units"].items() if t["condition"] == "healthy"]
-    truth = _truth_table(key, res.advice.filter(pl.col("unit_id").is_in(healthy)),
-                         res.windows, settings.max_start_ratio)
-    assert truth.height >= 10
-    clear = truth.filter((pl.col("span_w") >= 0.01 * pl.col("p_mean_w"))
-                         & (pl.col("basis") == "unit"))
-    assert (clear["dr"].abs() <= 0.1).all()     # (the physics fleet checks this on many bins)
+    hp = _healthy_physics_units(key)
+    truth = _truth_table(key, res.advice.filter(pl.col("unit_id").is_in(hp)), res.windows,
+                         settings.max_start_ratio, _lake_days(settings))
+    truth = truth.join(_ratio_levels(res.windows), on=["unit_id", "n_out_lo_rpm", "t_out_lo_nm"],
+                       how="left").with_columns(pl.col("levels").fill_null(0))
+    enough = truth.filter((pl.col("basis") == "unit") & (pl.col("windows") >= 20)
+                          & (pl.col("levels") >= 3)
+                          & (pl.col("span_w") >= 0.01 * pl.col("p_mean_w")))
+    assert enough.height >= 5
+    assert enough["dr"].abs().max() <= 0.1
     rel_excess = truth["excess_w"] / truth["p_mean_w"]
-    assert rel_excess.max() <= 0.03 and rel_excess.median() <= 0.005
+    assert truth.height >= 30
+    assert rel_excess.max() <= 0.05 and rel_excess.median() <= 0.005
 
 
-def test_weekly_saving_against_simulator_truth(sim):
+def test_weekly_saving_within_20_percent_of_true_saving_simulated_fleet(sim):
+    """Issue target: the estimated weekly saving against the simulator's true saving of
+    the same advice (true input power at the ratios used minus at the advised ratios,
+    simulator physics), summed over the 'change' rows of the units whose physics the truth
+    knows (healthy and stall units; wear, contamination, actuator and sensor faults change
+    the drive, so healthy physics is no truth for them). Measured on seeds 3 / 4 / 9:
+    +0.4 % / +28 % / +6 % (seed 4: a tuned unit gets small false savings near its voltage
+    limit; see the README, "Limits").
+
+    Also checked against the answer key's true saving (every product at its least-power
+    ratio, per sample), which the advice cannot fully reach: bins with too few windows get
+    no advice and one ratio serves a whole bin."""
     settings, res, key = sim
-    truth = _truth_table(key, res.advice, res.windows, settings.max_start_ratio)
+    hp = _healthy_physics_units(key)
+    truth = _truth_table(key, res.advice.filter(pl.col("unit_id").is_in(hp)), res.windows,
+                         settings.max_start_ratio, _lake_days(settings))
     change = truth.filter(pl.col("status") == "change")
     true_saving = float(change["saving_true_adv_kwh_week"].sum())
-    w = res.windows
-    days = dict(w.group_by("unit_id").agg(pl.col("_day").n_unique()).iter_rows())
-    energy = sum(float((g["p_in_mean"] * g["hours"]).sum()) / 1000.0 / (days[u] / 7.0)
-                 for (u,), g in w.group_by("unit_id"))
-    # the simulated operators already run near the least-power ratio: the true saving is
-    # about 0.05 % of the input energy, below what the model resolves; the estimate must
-    # agree within 20 % or within 0.5 % of the fleet's weekly steady input energy
-    assert abs(res.fleet_kwh_week - true_saving) <= max(0.2 * abs(true_saving), 0.005 * energy)
+    estimate = float(change["saving_kwh_week"].sum())
+    key_saving = sum(key["units"][u]["recipes"]["true_saving_kwh_per_week"] for u in hp)
+    assert true_saving > 0.1 and key_saving > 0.1
+    assert estimate == pytest.approx(true_saving, rel=0.20)
+    assert 0.4 * key_saving <= estimate <= 1.2 * key_saving
+    # the fleet figure and its interval
     assert res.fleet_kwh_week_low <= res.fleet_kwh_week <= res.fleet_kwh_week_high
-    assert true_saving < 0.005 * energy          # the premise above: little to gain here
+    assert res.fleet_kwh_week >= estimate - 1e-9
+    # the saving comes from the units with old recipes
+    per_unit = dict(res.advice.filter(pl.col("status") == "change").group_by("unit_id")
+                    .agg(pl.col("saving_kwh_week").sum()).iter_rows())
+    untuned = {u for u, t in key["units"].items() if t["recipes"]["tuning"] == "untuned"}
+    assert sum(v for u, v in per_unit.items() if u in untuned) >= 0.7 * res.fleet_kwh_week
 
 
-def test_start_ratio_limit_is_honoured(sim):
-    settings, _, _ = sim
-    res = advise(settings.replace(max_start_ratio=2.0), write=False, n_boot=5)
-    a = res.advice
-    starts = a.filter(pl.col("starts_from_standstill"))
-    assert starts.height > 0
+def test_start_ratio_limit_binds_and_is_honoured(sim):
+    """Some simulated products run steeper than max_start_ratio (3.0); the drive starts
+    them in a shallower ratio. Those duties start from standstill, so the advice is capped
+    at 3.0 although steeper ratios were observed; with a lower limit, more is capped."""
+    settings, res, key = sim
+    steep = res.advice.filter(pl.col("starts_from_standstill")
+                              & (pl.col("ratio_max_obs") > settings.max_start_ratio + 0.05)
+                              & pl.col("ratio_advised").is_not_null())
+    assert steep.height > 0
+    assert (steep["ratio_advised"] <= settings.max_start_ratio + 1e-9).all()
+    # cut by the start limit, or before it by the power model's ratio range
+    assert steep["limited_by"].str.contains("start_ratio|model_range").all()
+    assert steep["limited_by"].str.contains("start_ratio").mean() >= 0.5
+    # the truth honours the same cap: the advice is near the capped true optimum
+    truth = _truth_table(key, steep.filter(pl.col("unit_id").is_in(_healthy_physics_units(key))),
+                         res.windows, settings.max_start_ratio)
+    assert (truth["r_true"] <= settings.max_start_ratio + 1e-9).all()
+    # a stricter limit
+    res2 = advise(settings.replace(max_start_ratio=2.0), write=False, n_boot=5)
+    starts = res2.advice.filter(pl.col("starts_from_standstill"))
     advised = starts.filter(pl.col("ratio_advised").is_not_null())
     assert (advised["ratio_advised"] <= 2.0 + 1e-9).all()
     assert advised["limited_by"].str.contains("start_ratio").any()
-    steep = starts.filter((pl.col("ratio_min_obs") > 2.0) & (pl.col("windows") >= 20)
-                          & (pl.col("ratio_max_obs") - pl.col("ratio_min_obs") >= 0.01))
-    assert steep.height > 0 and steep["ratio_advised"].is_null().all()
-    assert steep["note"].str.contains("max_start_ratio").all()
+    cut = starts.filter((pl.col("ratio_min_obs") > 2.0) & (pl.col("windows") >= 20)
+                        & (pl.col("ratio_max_obs") - pl.col("ratio_min_obs") >= 0.01))
+    assert cut.height > 0 and cut["ratio_advised"].is_null().all()
+    assert cut["note"].str.contains("max_start_ratio").all()
 
 
 def test_cli_advise_json(sim, capsys, monkeypatch):

@@ -306,8 +306,10 @@ def test_operating_point_ranges(fleet, clean):
     for unit in _units_with(fleet["key"], "healthy"):
         d = clean[unit]
         s = d["steady"]
+        untuned = fleet["key"]["units"][unit]["recipes"]["tuning"] == "untuned"
         lo, hi = np.percentile(d["n_in"][s], [5, 95])
-        assert 1050 <= lo and hi <= 1460, (lo, hi)
+        # old recipes slow the motor down to 0.5-0.8 of its speed for the same output speed
+        assert (500 if untuned else 1050) <= lo and hi <= 1460, (lo, hi)
         t5, t50, t95 = np.percentile(d["t_m"][s], [5, 50, 95])
         assert 0.3 < t5 and 0.6 < t50 < 1.6 and t95 < 2.5
         # steady running stays below the stall threshold; start-up peaks below the
@@ -316,10 +318,64 @@ def test_operating_point_ranges(fleet, clean):
         assert np.nanmax(d["i"]) < sim.CURRENT_LIMIT_A[0]
         assert (d["n_in"] == 0).mean() > 0.3  # idle nights and weekends
         ratios = d["ratio"][s]
-        assert ratios.min() >= 0.5 and ratios.max() <= sim.MAX_START_RATIO
+        assert ratios.min() >= 0.5
+        assert ratios.max() <= (sim.STEEP_RECIPE_RATIOS.max() if untuned else
+                                sim.MAX_START_RATIO)
         # idle: no current, no speed
         idle = d["n_in"] == 0
         assert np.nanmax(d["i"][idle]) < 0.1
+
+
+def test_untuned_recipes_in_the_answer_key(fleet):
+    """About half the units run old recipes part of the time; the key says which, with
+    each product's ratios and the true saving of running it at its least-power ratio."""
+    rec = {u: t["recipes"] for u, t in fleet["key"]["units"].items()}
+    untuned = [u for u, r in rec.items() if r["tuning"] == "untuned"]
+    assert len(untuned) == round(len(rec) * sim.UNTUNED_SHARE)
+    for u, r in rec.items():
+        assert r["input_kwh_per_week"] > 0 and r["steady_hours_per_week"] > 0
+        for p in r["products"]:
+            assert 0.5 <= p["ratio_old"] <= p["ratio_tuned"]
+            assert p["ratio_old"] <= sim.MAX_START_RATIO
+        if u in untuned:
+            assert 0.0 < r["true_saving_kwh_per_week"] < 0.1 * r["input_kwh_per_week"]
+        else:
+            assert r["true_saving_kwh_per_week"] == 0.0
+            assert all(p["ratio_old"] == p["ratio_tuned"] for p in r["products"])
+
+
+def test_untuned_recipe_runs_the_same_duty_with_more_current(fleet):
+    """Physics of an old recipe (simulate.true_operating_point): the same output speed and
+    torque at a shallower ratio need a slower motor, more current and more input power than
+    at the product's least-power ratio."""
+    key = fleet["key"]
+    for u, t in key["units"].items():
+        for p in t["recipes"]["products"]:
+            if "least_power_ratio" not in p:
+                continue
+            n_out = 1300.0 / p["ratio_tuned"]
+            t_out = 0.9 * p["ratio_tuned"]
+            old = sim.true_operating_point(key, u, n_out, t_out, p["ratio_old"], 40.0)
+            best = sim.true_operating_point(key, u, n_out, t_out, p["least_power_ratio"], 40.0)
+            assert old["i_in"] > best["i_in"] and old["n_in_rpm"] < best["n_in_rpm"]
+            assert old["p_in_w"] >= best["p_in_w"] - 0.5
+
+
+def test_no_start_in_a_steep_ratio_except_the_stall_fault(fleet, clean):
+    """Products steeper than max_start_ratio are entered while running; a drive stops in
+    (and so starts in) a ratio at or below it. Only the stall unit's fault starts steeper."""
+    steep_seen = False
+    for unit, t in fleet["key"]["units"].items():
+        d = clean[unit]
+        running = d["n_in"] > DEFAULTS["stall_n_in_max_rpm"]
+        step = np.diff(d["ts"])
+        # a start seen in the log (a logger gap can hide the start itself)
+        start = running[1:] & ~running[:-1] & (step == np.median(step))
+        steep_seen |= bool((d["ratio"][d["steady"]] > sim.MAX_START_RATIO).any())
+        if t["condition"] == "stall":
+            continue
+        assert (d["ratio"][1:][start] <= sim.MAX_START_RATIO + 1e-6).all(), unit
+    assert steep_seen
 
 
 def test_torque_efficiency_on_instrumented_units(fleet, clean):
