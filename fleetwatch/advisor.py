@@ -35,6 +35,12 @@ Steps (method and limits in the README, section "Output-torque soft sensor and r
      advice) and inside the ratios behind the power model, both over all its data and near
      this duty (the bin widened by one bin width each way): never extrapolated, in ratio
      or in duty;
+   - the motor speeds behind the power model (2nd-98th percentile of its windows' n_in; at
+     most SPEED_OUT_SHARE of the duty's hours outside, a window's own speed always
+     counts): its speed-loss terms are unknown elsewhere. A drive held at its supply-
+     voltage limit runs one narrow band of motor speeds, where ratio and output speed move
+     together (n_out = n_in / i) and the model cannot tell them apart; slowing its motor
+     below that band gave tuned drives false savings;
    - the motor's speed limit ``motor_n_max_rpm`` (n_in = i * n_out * i_act/i_cmd) and the
      highest terminal voltage seen on the unit (V = I*R + k_e*omega, domain.md 1.4: above
      it the supply cannot hold the speed);
@@ -122,6 +128,8 @@ EDGE_MAX_GAP_S = 3600.0       # a start/stop and its window must lie within an h
 UNIT_MODEL_MIN_WINDOWS = 200  # own power model from this many windows and 3 ratio levels
 BOOTSTRAP_CONFIDENCE = 0.90
 SUPPORT_MIN_WINDOWS = 10      # fewest model windows near a duty to define its ratio support
+SPEED_SUPPORT_Q = RATIO_RANGE_Q  # motor speeds behind a power model: robust to a stray window
+SPEED_OUT_SHARE = 0.10        # share of a duty's hours that may run outside those speeds
 
 
 def line_of(unit_id: str) -> str:
@@ -431,13 +439,21 @@ def _motor_state(ratios: np.ndarray, win: dict[str, np.ndarray],
 
 
 def _feasible(grid: np.ndarray, r_used: np.ndarray, win: dict[str, np.ndarray],
-              sensor: TorqueSoftSensor | None, lim: _Limits,
-              v_seen: float) -> tuple[np.ndarray, list[str], list[str]]:
+              sensor: TorqueSoftSensor | None, lim: _Limits, v_seen: float,
+              n_support: tuple[float, float] = (-np.inf, np.inf)
+              ) -> tuple[np.ndarray, list[str], list[str]]:
     """Mask over the ratio grid: every window of the duty stays inside the motor limits.
 
     Returns (mask, limits that cut the grid, configured limits the used ratios break).
     The voltage limit is empirical (the highest voltage seen): a window's own ratio always
     counts as reachable for it, so the model's voltage error cannot rule out what ran.
+    ``n_support``: the motor speeds (rpm) the power model's data cover (``model_speed``).
+    At the ratio searched, at most SPEED_OUT_SHARE of the duty's hours (``hours`` in
+    ``win``) may need a motor speed outside it; a window's own speed always counts as
+    covered. The model's speed-loss terms are known only over the speeds its data ran at:
+    a drive held at its supply-voltage limit runs one narrow band of motor speeds, and
+    there the ratio and the output speed move together, so the model cannot tell their
+    effects apart and a ratio that slows the motor below that band is an extrapolation.
     """
     ok = np.ones(grid.shape, bool)
     why: list[str] = []
@@ -448,11 +464,21 @@ def _feasible(grid: np.ndarray, r_used: np.ndarray, win: dict[str, np.ndarray],
               ("motor_current", cur, cur_u, np.full(n_u.shape, lim.motor_i_max_a), True)]
     if np.isfinite(v_seen):
         checks.append(("motor_voltage", v, v_u, np.fmax(v_seen, v_u), False))
+    s_lo, s_hi = n_support
+    if np.isfinite(s_lo) or np.isfinite(s_hi):
+        hours = np.asarray(win.get("hours", np.ones(n_u.shape[0])), float)
+        inside = ((n_in >= np.fmin(s_lo, n_u)) & (n_in <= np.fmax(s_hi, n_u))
+                  | ~np.isfinite(n_in))                     # (W, G); unknown speed: no cut
+        out_share = (hours[:, None] * ~inside).sum(axis=0) / max(float(hours.sum()), 1e-12)
+        m = out_share <= SPEED_OUT_SHARE + 1e-12
+        if not m.all():
+            why.append("model_speed")
+        ok &= m
     for name, val, val_u, limit, configured in checks:
         if not np.isfinite(val).any():
             continue
         m = np.all(np.nan_to_num(val, nan=-np.inf) <= limit, axis=0)
-        if not m.all():
+        if not m.all() and name not in why:
             why.append(name)
         ok &= m
         if configured and np.any(np.nan_to_num(val_u, nan=-np.inf) > limit):
@@ -660,10 +686,11 @@ def advise_frame(frame: pl.DataFrame, sensor: TorqueSoftSensor | None, *,
                "k_e": own["k_e"].to_numpy().astype(float),
                "i0_a": own["i0_a"].to_numpy().astype(float),
                "r_ohm": own["r_ohm"].cast(pl.Float64).to_numpy(),
-               "temp": own["_temp"].to_numpy().astype(float)}
+               "temp": own["_temp"].to_numpy().astype(float), "hours": dur}
         v_seen = v_max_seen.get(u)
         ok, why_m, broken = _feasible(grid, r_used_w, win, sensor, lim,
-                                      np.nan if v_seen is None else float(v_seen) * (1 + V_MARGIN))
+                                      np.nan if v_seen is None else float(v_seen) * (1 + V_MARGIN),
+                                      _speed_support(mdata, u if mbasis == "unit" else None))
         why += why_m
         if standstill and np.any(r_used_w > max_start_ratio + 1e-9):
             broken.append("start_ratio")
@@ -757,6 +784,23 @@ def _support_range(mdata: pl.DataFrame, nlo: float, nhi: float, tlo: float, thi:
     if d.height < SUPPORT_MIN_WINDOWS:
         return float("inf"), float("-inf")
     q = np.quantile(d["ratio"].to_numpy().astype(float), RATIO_RANGE_Q)
+    return float(q[0]), float(q[1])
+
+
+def _speed_support(mdata: pl.DataFrame, unit: str | None) -> tuple[float, float]:
+    """Motor speeds (rpm, SPEED_SUPPORT_Q quantiles of n_in_mean) of the power model's windows.
+
+    ``unit``: only that unit's windows. (-inf, inf) without a logged motor speed or with
+    fewer than SUPPORT_MIN_WINDOWS windows.
+    """
+    if "n_in_mean" not in mdata.columns:
+        return float("-inf"), float("inf")
+    d = mdata if unit is None else mdata.filter(pl.col("unit_id") == unit)
+    x = d["n_in_mean"].cast(pl.Float64).drop_nulls().drop_nans().to_numpy()
+    x = x[x > 0]
+    if x.size < SUPPORT_MIN_WINDOWS:
+        return float("-inf"), float("inf")
+    q = np.quantile(x, SPEED_SUPPORT_Q)
     return float(q[0]), float(q[1])
 
 

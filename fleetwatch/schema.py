@@ -289,9 +289,10 @@ _ADVICE_COLS = (
     ("basis", "VARCHAR", "-", "unit (own windows) or line (pooled with same-line units)."),
     ("starts_from_standstill", "BOOLEAN", "-", "The duty is entered from, or left into, "
      "standstill: the advice is capped at max_start_ratio."),
-    ("limited_by", "VARCHAR", "-", "Limits that cut the search range (observed_range, "
-     "model_range, start_ratio, motor_speed, motor_voltage, motor_current), comma "
-     "separated.", ),
+    ("limited_by", "VARCHAR", "-", "Limits that cut the search range, comma separated: "
+     "model_range (ratios the unit's power model was fitted on), model_support (ratios "
+     "run near this duty), start_ratio (max_start_ratio), model_speed (motor speeds the "
+     "power model has data for), motor_speed, motor_voltage, motor_current."),
     ("torque_source", "VARCHAR", "-", "measured (the unit logs t_out) or estimated (soft "
      "sensor)."),
     ("status", "VARCHAR", "-", "change (advised ratio differs and the interval excludes no "
