@@ -208,7 +208,8 @@ def _session(source: Any, tables: Sequence[str] | None = None
     except TypeError:
         con = source.connect()
     try:
-        _prepare(con)
+        if not getattr(con, "fleetwatch_prepared", False):  # a dashboard snapshot's: done
+            _prepare(con)
         yield con
     finally:
         con.close()
@@ -824,11 +825,26 @@ def anomaly_scores(source: Any, unit_id: str | Sequence[str] | None = None, star
                           WHERE {uf} AND {df_} ORDER BY unit_id, day""", **params)
 
 
+#: Bucket lengths (s) for downsampled series: whole minutes, hours or days that divide a
+#: day (or are whole days), so buckets start at round UTC times and read as "3-hour means".
+NICE_BUCKETS_S = (60, 120, 300, 600, 900, 1200, 1800, 3600, 7200, 10800, 14400, 21600,
+                  28800, 43200, 86400, 2 * 86400, 3 * 86400, 7 * 86400, 14 * 86400)
+
+
+def bucket_seconds(span_s: float, max_points: int) -> int:
+    """The shortest bucket of :data:`NICE_BUCKETS_S` that cuts ``span_s`` seconds into at
+    most ``max_points`` buckets (beyond the list: the exact length needed)."""
+    need = max(1, int(-(-span_s // max(1, max_points))))
+    return next((b for b in NICE_BUCKETS_S if b >= need), need)
+
+
 def _bucketed(source: Any, unit_id: str, start: Any, end: Any, select: str,
               max_points: int, from_sql: str = "windows w", where: str = "true"
               ) -> pl.DataFrame:
     """Window-level series of one unit averaged into time buckets so that at most about
-    ``max_points`` rows come back (charts stay light; Altair's row cap is 5000)."""
+    ``max_points`` rows come back (charts stay light; Altair's row cap is 5000). Buckets
+    are round lengths (:func:`bucket_seconds`: 1 h, 3 h, 6 h, 1 day...) aligned on UTC
+    midnight; ``ts`` is the bucket's start."""
     params: dict = {}
     uf = _unit_filter("w.unit_id", unit_id, params)
     tf = _ts_filter("w.window_start", start, end, params)
@@ -838,7 +854,7 @@ def _bucketed(source: Any, unit_id: str, start: Any, end: Any, select: str,
                             params=params).fetchall()[0]
         ts_expr = "w.window_start"
         if n and n > max_points and lo is not None:
-            params["b"] = max(1, int(-(-(hi - lo).total_seconds() // max_points)))
+            params["b"] = bucket_seconds((hi - lo).total_seconds(), max_points)
             ts_expr = "to_timestamp(floor(epoch(w.window_start) / $b) * $b)"
         sql = f"""SELECT {ts_expr} AS ts, {select}
                   FROM {from_sql} WHERE {uf} AND {tf} AND {where}

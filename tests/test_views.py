@@ -234,6 +234,25 @@ def test_window_series_are_bucketed_to_a_point_budget(synth):
     assert vw.temperature_series(lake, "L1-U01", max_points=50).height <= 51
 
 
+def test_buckets_are_round_lengths_within_the_point_budget():
+    day = 86400
+    assert vw.bucket_seconds(90 * day, 300) == 8 * 3600          # 270 points of 8 h
+    assert vw.bucket_seconds(30 * day, 300) == 3 * 3600
+    assert vw.bucket_seconds(365 * day, 300) == 2 * day
+    assert vw.bucket_seconds(3650 * day, 100) == 3650 * day // 100   # past the list: exact
+    for span in (3600, 7 * day, 63 * day, 400 * day):
+        for pts in (50, 300, 2000):
+            b = vw.bucket_seconds(span, pts)
+            assert span / b <= pts and (b in vw.NICE_BUCKETS_S or b > 14 * day)
+
+
+def test_bucketed_series_start_on_round_utc_times(synth):
+    lake, _ = synth
+    r = vw.ratio_series(lake, "L1-U03", max_points=100)
+    step = vw.bucket_seconds((r["ts"].max() - r["ts"].min()).total_seconds(), 100)
+    assert all(int(t.timestamp()) % step == 0 for t in r["ts"].to_list())
+
+
 def test_fleet_slip_distribution_quantiles(synth):
     lake, truth = synth
     d = vw.fleet_slip_distribution(lake)

@@ -69,28 +69,24 @@ with w2:
                      timezone=settings.plant_timezone),
              empty=f"No steady windows with load in {week}.")
 
+# one stack per section (time axes aligned, markers on each time-axis panel): the browser
+# sets up one chart per stack instead of one per panel. Stacks keep their panels' width,
+# so they get the page's full width, not a column.
 st.subheader("Operation")
-o1, o2 = st.columns(2)
-with o1:
-    ui.chart(view.charts["ratio"], empty="No steady-state ratio data in this range.")
-with o2:
-    ui.chart(view.charts["power"], empty="No input power data in this range.")
-if view.charts["temperature"] is None:
-    st.caption("No temperature logged for this unit in this range.")
-else:
-    ui.chart(view.charts["temperature"])
+ui.chart(view.charts["operation"], empty="No steady-state operation data in this range.")
 
 st.subheader("Health")
-ui.chart(view.charts["health"], empty="No health results in this range.")
+ui.chart(view.charts["health"], empty="No health results or anomaly scores in this range.")
 h1, h2 = st.columns(2)
 with h1:
     st.markdown("**Status changes and their reasons**")
     st.dataframe(view.health_changes, hide_index=True, placeholder="–", key="unit_health_table")
 with h2:
-    ui.chart(view.charts["scores"], empty="No anomaly scores in this range.")
     if view.top_scores.height:
-        st.markdown("**Highest scores and the features that drove them**")
+        st.markdown("**Highest anomaly scores and the features that drove them**")
         st.dataframe(view.top_scores, hide_index=True, placeholder="–", key="unit_scores_table")
+for note in view.missing:
+    st.caption(note)
 
 st.subheader("Events and maintenance")
 if view.markers.is_empty():
