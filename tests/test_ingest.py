@@ -411,3 +411,207 @@ def test_cli_ingest_json_and_exit_codes(tmp_path, capsys):
     cap = capsys.readouterr()
     assert "skipped" in cap.out and "refused" in cap.out
     assert "Error: " in cap.err and "missing.csv" in cap.err
+
+
+# ------------------------------------------------------------------ chunking and the pipeline
+
+CANON_HEADER = "unit_id,ts,v_in,i_in,n_in,n_out,ratio_cmd,temp"
+
+
+def _fleet_rows(n_ts=120, units=("U1", "U2", "U3", "U4", "U5"), order="time"):
+    """Clean CSV records of a small fleet, 60 s apart; ``order`` time (units interleaved at
+    each timestamp, as a fleet logger writes) or unit (one unit after the other)."""
+    t0 = datetime(2024, 5, 1, 22, 0, tzinfo=UTC)
+    recs = []
+    for i in range(n_ts):
+        ts = (t0 + timedelta(seconds=60 * i)).strftime("%Y-%m-%dT%H:%M:%SZ")
+        for k, u in enumerate(units):
+            recs.append((u, ts, f"{40 + k}.0,2.5,{1000 + i}.0,{490 + k}.0,2.0,{30 + i % 7}.5"))
+    if order == "unit":
+        recs.sort(key=lambda r: (r[0], r[1]))
+    return [f"{u},{ts},{v}" for u, ts, v in recs]
+
+
+def _plant_duplicates(recs: list[str]) -> tuple[list[str], int, int]:
+    """Append copies of earlier records: every 7th repeated as is (a duplicate), every 11th
+    with another value (a conflicting duplicate). Copies land in other chunks than their
+    originals and next to them. Returns (records, duplicates, conflicts)."""
+    out, dups, conf = [], 0, 0
+    for i, r in enumerate(recs):
+        out.append(r)
+        if i % 7 == 3:
+            out.append(r)
+            dups += 1
+        if i % 11 == 5:
+            out.append(r.rsplit(",", 1)[0] + ",99.5")
+            conf += 1
+    # and a few copies far from their originals, in later chunks
+    for i in range(0, len(recs), 97):
+        out.append(recs[i])
+        dups += 1
+    return out, dups, conf
+
+
+def _ingest_text(tmp_path, name, recs, chunk_rows):
+    folder = tmp_path / name
+    folder.mkdir()
+    path = folder / "fleet.csv"
+    path.write_text(CANON_HEADER + "\n" + "\n".join(recs) + "\n")
+    settings = load_settings(folder / "proj", env={}, overrides={"ingest_chunk_rows": chunk_rows})
+    rep = ingest_files([path], settings)
+    lake = Lake.from_settings(settings)
+    return rep.files[0], lake
+
+
+@pytest.mark.parametrize("order", ["time", "unit"])
+def test_small_chunks_give_the_same_result_as_one_chunk(tmp_path, order):
+    # 600 records of ~60 bytes: chunks of 20 rows are cut by the 4 kB block floor into
+    # about 70 records, inside runs of equal timestamps (time order) or of one unit
+    recs, dups, conf = _plant_duplicates(_fleet_rows(order=order))
+    small, lake_s = _ingest_text(tmp_path, "small", recs, 20)
+    whole, lake_w = _ingest_text(tmp_path, "whole", recs, 1_000_000)
+    assert small.status == whole.status == "ok"
+    assert lake_s.version("telemetry") >= 5           # really several chunks and commits
+    assert lake_w.version("telemetry") == 0           # one chunk: one commit, rows held back too
+    for f in (small, whole):
+        assert (f.rows_read, f.accepted, f.duplicates, f.quarantined) == \
+            (len(recs), 600, dups, conf)
+        assert f.rules == {"conflicting_duplicate": conf}
+    key = ["unit_id", "ts"]
+    ts_, tw = lake_s.read("telemetry").sort(key), lake_w.read("telemetry").sort(key)
+    assert ts_.drop("batch_id").equals(tw.drop("batch_id"))
+    assert ts_.select(key).is_unique().all()
+    qs = lake_s.read("quarantine").sort("line").select("line", "rule", "raw")
+    qw = lake_w.read("quarantine").sort("line").select("line", "rule", "raw")
+    assert qs.equals(qw)
+    # the first record of a key wins: no conflicting value (99.5) reached the lake
+    assert 99.5 not in ts_["temp"].to_list()
+    text = (tmp_path / "small" / "fleet.csv").read_text().split("\n")
+    for line, raw in zip(qs["line"], qs["raw"]):
+        assert text[line - 1].endswith(",99.5") and json.loads(raw)["temp"] == "99.5"
+
+
+def test_chunk_boundary_inside_a_run_of_equal_timestamps(tmp_path):
+    # 80 units log at the same instants: every chunk boundary falls inside a run of equal
+    # timestamps; the second half of the file repeats the first (duplicates across chunks)
+    recs = _fleet_rows(n_ts=6, units=tuple(f"U{i:02d}" for i in range(80)))
+    recs = recs + recs[:240]
+    f, lake = _ingest_text(tmp_path, "runs", recs, 10)
+    assert lake.version("telemetry") >= 3
+    assert (f.rows_read, f.accepted, f.duplicates, f.quarantined) == (720, 480, 240, 0)
+    t = lake.read("telemetry")
+    assert t.height == 480 and t.select("unit_id", "ts").is_unique().all()
+
+
+def test_unsorted_input_is_sorted_in_the_lake(tmp_path):
+    import random
+    recs = _fleet_rows(n_ts=60)
+    random.Random(3).shuffle(recs)
+    f, lake = _ingest_text(tmp_path, "shuffled", recs, 50)
+    assert f.accepted == 300
+    from deltalake import DeltaTable
+    dt = DeltaTable(str(lake.path / "telemetry"))
+    assert len(dt.file_uris()) >= 2
+    for uri in dt.file_uris():
+        keys = pl.read_parquet(uri, hive_partitioning=False).select("unit_id", "ts")
+        assert keys.equals(keys.sort("unit_id", "ts"))
+
+
+def test_a_failed_write_leaves_the_batch_invisible_and_a_rerun_completes_it(tmp_path,
+                                                                            monkeypatch):
+    from fleetwatch.errors import LakeError
+    recs = _fleet_rows(n_ts=120)
+    folder = tmp_path / "in"
+    folder.mkdir()
+    path = folder / "fleet.csv"
+    path.write_text(CANON_HEADER + "\n" + "\n".join(recs) + "\n")
+    settings = load_settings(tmp_path / "proj", env={}, overrides={"ingest_chunk_rows": 20})
+    real_append, calls = Lake.append, []
+
+    def failing_append(self, name, data, partition_by=None):
+        if name == "telemetry":
+            calls.append(name)
+            if len(calls) == 3:           # runs in the writer thread, after two commits
+                raise LakeError("disk full (simulated)")
+        return real_append(self, name, data, partition_by)
+
+    monkeypatch.setattr(Lake, "append", failing_append)
+    with pytest.raises(LakeError, match="disk full"):
+        ingest_files([path], settings)
+    monkeypatch.setattr(Lake, "append", real_append)
+    lake = Lake.from_settings(settings)
+    assert lake.pending_batches()                       # the killed batch is marked
+    assert lake.read("telemetry").height == 0           # ... and readers do not see its rows
+    rep = ingest_files([path], settings)                # the re-run undoes it and completes
+    assert rep.notes and "interrupted" in rep.notes[0]
+    f = rep.files[0]
+    assert (f.status, f.rows_read, f.accepted, f.duplicates) == ("ok", 600, 600, 0)
+    assert lake.read("telemetry").height == 600 and not lake.pending_batches()
+
+
+def test_a_file_refused_half_way_leaves_nothing_behind(tmp_path):
+    # invalid UTF-8 far into the file, with the encoding declared: the reader thread refuses
+    # the file after earlier chunks were written; their rows are rolled back
+    recs = _fleet_rows(n_ts=120)
+    folder = tmp_path / "in"
+    folder.mkdir()
+    path = folder / "fleet.csv"
+    body = (CANON_HEADER + "\n" + "\n".join(recs) + "\n").encode()
+    path.write_bytes(body + b"U9,2024-05-02T00:00:00Z,40.0,2.5,1000.0,490.0,2.0,\xff\xfe\n")
+    (folder / "m.toml").write_text('[format]\nencoding = "utf-8"\n')
+    settings = load_settings(tmp_path / "proj", env={}, overrides={"ingest_chunk_rows": 20})
+    rep = ingest_files([path], settings, mapping=folder / "m.toml")
+    f = rep.files[0]
+    assert f.status == "refused" and "not valid utf-8 near line" in f.message
+    assert rep.exit_code == 1
+    lake = Lake.from_settings(settings)
+    assert lake.read("telemetry").height == 0 and not lake.pending_batches()
+    assert lake.read("batches")["status"].to_list() == ["refused"]
+
+
+@pytest.mark.parametrize("order", ["time", "unit"])
+def test_sorted_input_never_reads_its_own_earlier_chunks_back(tmp_path, monkeypatch, order):
+    # the rows of the last timestamp (or unit) of a chunk are held back to the next chunk, so
+    # the lake lookup of each chunk skips the files of the chunks before it by their key range
+    opened = []
+    real = Lake.raw_dataset
+
+    def counting(self, name, file_pruning_predicate=None):
+        ds = real(self, name, file_pruning_predicate)
+        if file_pruning_predicate and ds is not None:
+            opened.append(len(ds.files))
+        return ds
+
+    monkeypatch.setattr(Lake, "raw_dataset", counting)
+    f, lake = _ingest_text(tmp_path, order, _fleet_rows(order=order), 20)
+    assert (f.rows_read, f.accepted) == (600, 600)
+    assert lake.version("telemetry") >= 5 and len(opened) >= 5
+    if order == "time":
+        assert set(opened) == {0}
+    else:
+        # a chunk that spans two units covers the whole time range; per-file min/max
+        # statistics then cannot rule out the file of the unit's earlier rows, only the others
+        assert max(opened) <= 1
+
+
+def test_csv_blocks_end_outside_quotes_and_lose_nothing(tmp_path):
+    from fleetwatch.ingest import _CsvSource
+    # quoted fields with line breaks and delimiters, some longer than a whole block
+    rows = []
+    for i in range(3000):
+        note = f'"note {i},\nsecond line"' if i % 5 == 0 else f"plain {i}"
+        if i % 997 == 0:
+            note = '"' + "x\n" * 3000 + '"'                  # 6 kB field: longer than a block
+        rows.append(f"U{i % 3},2024-05-01T00:{i % 60:02d}:00Z,{note}")
+    body = ("\n".join(rows) + "\n").encode()
+    path = tmp_path / "notes.csv"
+    path.write_bytes(b"unit_id,ts,note\n" + body)
+    src = _CsvSource(path, None, 20)                            # 4 kB blocks
+    try:
+        blocks = list(src._blocks())
+    finally:
+        src.close()
+    assert len(blocks) > 20
+    assert b"".join(blocks) == body
+    for b in blocks:
+        assert b.endswith(b"\n") and b.count(b'"') % 2 == 0

@@ -235,3 +235,53 @@ def test_compact_keeps_row_counts(tmp_path):
 def test_arrow_schema_matches_contract():
     for name, t in TABLES.items():
         assert arrow_schema(name).names == t.column_names
+
+
+def _file_rows(lake: Lake, name: str) -> list[pl.DataFrame]:
+    """The rows of each Parquet file of a table, in file order."""
+    from deltalake import DeltaTable
+    dt = DeltaTable(str(lake.path / name))
+    return [pl.read_parquet(uri, hive_partitioning=False) for uri in dt.file_uris()]
+
+
+@pytest.mark.parametrize("order", ["sorted", "time_major", "shuffled", "reversed"])
+def test_rows_are_sorted_by_unit_and_time_in_every_file(tmp_path, order):
+    # three units, 40 samples each; time_major is a fleet logger's order (units interleaved)
+    n = 40
+    ts = [T0 + timedelta(seconds=60 * i) for i in range(n)]
+    frames = [_tele(n, unit=u).with_columns(pl.Series("ts", ts),
+                                            p_in=pl.int_range(0, n).cast(pl.Float64) + k * 1000)
+              for k, u in enumerate(["U2", "U10", "U1"])]
+    df = pl.concat(frames)
+    df = {"sorted": df.sort("unit_id", "ts"),
+          "time_major": df.sort("ts", maintain_order=True),
+          "shuffled": df.sample(fraction=1.0, shuffle=True, seed=7),
+          "reversed": df.sort("unit_id", "ts", descending=True)}[order]
+    lake = Lake(tmp_path / "lake")
+    lake.append("telemetry", df)
+    files = _file_rows(lake, "telemetry")
+    assert sum(f.height for f in files) == 3 * n
+    for f in files:
+        keys = f.select("unit_id", "ts")
+        assert keys.equals(keys.sort("unit_id", "ts")), order
+    got = lake.read("telemetry").sort("unit_id", "ts")
+    want = df.sort("unit_id", "ts")
+    assert got["p_in"].to_list() == want["p_in"].to_list()   # rows kept together
+
+
+def test_sort_by_key_is_stable_and_puts_missing_keys_last():
+    import pyarrow as pa
+
+    from fleetwatch.lake import _sort_by_key
+    rows = [("b", 2.0, 0), ("a", None, 1), ("a", 1.0, 2), (None, 1.0, 3), ("b", 2.0, 4),
+            ("a", float("nan"), 5), ("a", 1.0, 6)]
+    tbl = pa.table({"k": [r[0] for r in rows], "x": [r[1] for r in rows],
+                    "i": [r[2] for r in rows]})
+    got = _sort_by_key(tbl, ["k", "x"]).column("i").to_pylist()
+    # a: 1.0 (rows 2, 6 in input order), then NaN, then null; b: rows 0, 4; null key last
+    assert got == [2, 6, 5, 1, 0, 4, 3]
+    # already in order: returned as is; time-major order: stable sort on the first key only
+    ordered = pa.table({"k": ["a", "a", "b"], "x": [1.0, 2.0, 0.5]})
+    assert _sort_by_key(ordered, ["k", "x"]) is ordered
+    tm = pa.table({"k": ["b", "a", "b", "a"], "x": [1.0, 1.0, 2.0, 2.0], "i": [0, 1, 2, 3]})
+    assert _sort_by_key(tm, ["k", "x"]).column("i").to_pylist() == [1, 3, 0, 2]
