@@ -323,10 +323,11 @@ def _scan_natively(con, lake, versions: dict[str, int]) -> list[str]:
     """Re-point the views of :data:`NATIVE_SCAN_TABLES` on ``con`` (from ``Lake.connect``)
     at DuckDB's own Parquet reader over the files of the Delta snapshot at ``versions``.
 
-    Only where that reads the same rows as the Arrow dataset: a table with no partition
-    columns, outside the ingest batch gate (``lake.GATED_TABLES``), at Delta reader
-    protocol 1 (no deletion vectors, no column mapping) and with at least one file; any
-    other table, or any error, keeps the lake's own view. Returns the tables changed.
+    Only where that reads the same rows as the Arrow dataset: a table outside the ingest
+    batch gate (``lake.GATED_TABLES``), at Delta reader protocol 1 (no deletion vectors, no
+    column mapping), with at least one file, and whose columns (partition columns read back
+    from the hive-style paths) come out with the view's names and types; any other table,
+    or any error, keeps the lake's own view. Returns the tables changed.
     (This belongs in ``Lake.connect``, for every reader; proposed to lake.py's owner.)
     """
     from deltalake import DeltaTable
@@ -341,11 +342,16 @@ def _scan_natively(con, lake, versions: dict[str, int]) -> list[str]:
             table = DeltaTable(str(Path(lake.path) / name), version=versions[name])
             proto = table.protocol()
             files = table.file_uris()
-            if (proto.min_reader_version > 1 or proto.reader_features
-                    or table.metadata().partition_columns or not files):
+            parts = table.metadata().partition_columns
+            if proto.min_reader_version > 1 or proto.reader_features or not files:
                 continue
             listed = ", ".join("'" + f.replace("'", "''") + "'" for f in files)
-            native = f"SELECT * FROM read_parquet([{listed}], union_by_name = true)"
+            # partition values live in the paths (col=value/), not in the files: DuckDB's
+            # hive reading recovers them; the columns are listed in the lake view's order
+            # and the type check below falls back if a value's type comes out different
+            cols = ", ".join('"' + c.replace('"', '""') + '"' for c in con.table(name).columns)
+            native = (f"SELECT {cols} FROM read_parquet([{listed}], union_by_name = true"
+                      f"{', hive_partitioning = true' if parts else ''})")
             # same columns in the same order as the lake's view, or leave it alone
             new, old = con.sql(native), con.table(name)
             if (new.columns, new.types) != (old.columns, old.types):

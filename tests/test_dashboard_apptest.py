@@ -436,7 +436,7 @@ def test_snapshot_reads_window_tables_natively_with_the_same_rows(project):
         snap.close()
 
 
-def test_native_scan_leaves_gated_missing_and_partitioned_tables_alone(project, tmp_path):
+def test_native_scan_leaves_missing_tables_alone_and_reads_partitions_back(project, tmp_path):
     root, _ = project
     from fleetwatch.lake import Lake
 
@@ -448,17 +448,26 @@ def test_native_scan_leaves_gated_missing_and_partitioned_tables_alone(project, 
             sorted(dash.NATIVE_SCAN_TABLES)
     finally:
         con.close()
-    # a partitioned table is read through the lake (Delta partition values are not in
-    # the files)
+    # a table partitioned by day: Delta keeps the partition value in the path, not in the
+    # files; the native view must read it back with the same type and rows
     part = Lake(tmp_path / "lake")
+    src = lake.read("windows")
+    days = src["day"].unique().sort()[:3]
+    sample = src.filter(src["day"].is_in(days.implode()))
     with part.writer("test"):
-        part.overwrite("windows", lake.read("windows").head(500), partition_by=["day"])
-    con = part.connect()
+        part.overwrite("windows", sample, partition_by=["day"])
+    con, ref = part.connect(), part.connect()
     try:
-        assert dash._scan_natively(con, part, part.versions()) == []
-        assert con.sql("SELECT count(*) FROM windows").fetchall() == [(500,)]
+        assert dash._scan_natively(con, part, part.versions()) == ["windows"]
+        q = "SELECT * FROM windows ORDER BY unit_id, window_start"
+        got, want = con.sql(q).pl(), ref.sql(q).pl()
+        assert got.height == sample.height > 0 and got.equals(want)
+        assert con.sql("SELECT count(*) FROM windows WHERE day = $d",
+                       params={"d": days[1]}).fetchall()[0][0] == \
+            sample.filter(sample["day"] == days[1]).height
     finally:
         con.close()
+        ref.close()
 
 
 def test_empty_project_says_what_to_do(tmp_path, monkeypatch):
