@@ -25,6 +25,7 @@ fits) and small aggregates come into Python.
 from __future__ import annotations
 
 import datetime as dt
+import gc
 import hashlib
 import json
 import os
@@ -44,7 +45,7 @@ from .sqlmodels import load_models, run_model
 
 __all__ = ["analyze", "AnalyzeReport", "AnalysisPlan", "run_analysis", "plan_analysis",
            "state_after",
-           "ANALYZE_SETTINGS", "DERIVED", "CHUNK_ROWS", "STATE_FILE"]
+           "ANALYZE_SETTINGS", "DERIVED", "CHUNK_ROWS", "STATE_FILE", "PARTITIONED"]
 
 UTC = dt.timezone.utc
 
@@ -59,7 +60,15 @@ FIT_BATCH_WINDOWS = 1_500_000
 DUCKDB_MEMORY_LIMIT = "2GB"
 #: ... and afterwards, while the fits hold window-level frames in Python and the lake
 #: writes Arrow copies of the derived tables.
-DUCKDB_WRITE_MEMORY_LIMIT = "1GB"
+DUCKDB_WRITE_MEMORY_LIMIT = "256MB"
+#: Derived tables stored partitioned by UTC day (``lake.overwrite(..., partition_by=...)``):
+#: the two large per-window tables. An incremental run replaces their recomputed days by
+#: swapping whole partitions; unpartitioned, Delta has to rewrite every file that holds a
+#: recomputed day, and with rows sorted by unit every file holds every day. The small
+#: tables stay one file. Declared in schema.TABLES; a change changes the fingerprint (one
+#: full rebuild).
+PARTITIONED = {name: list(TABLES[name].partition_by) for name in DERIVED
+               if TABLES[name].partition_by}
 #: State file inside the lake folder.
 STATE_FILE = "_analyze_state.json"
 #: Settings whose change invalidates every derived row (a full rebuild follows).
@@ -147,6 +156,7 @@ def fingerprint(settings: Any) -> str:
     for m in load_models():
         h.update(m.sql.encode())
     h.update(Path(fits.__file__).read_bytes())
+    h.update(f"partitioned={sorted(PARTITIONED.items())!r}".encode())
     return h.hexdigest()[:16]
 
 
@@ -175,20 +185,41 @@ def _first_ts(con, where: str = "", params: dict | None = None) -> dict[str, dt.
     return {u: t.astimezone(UTC) for u, t in rows}
 
 
+def _day_counts_from_log(lake) -> dict[dt.date, int] | None:
+    """Telemetry rows per ``day`` partition from the Delta log's file statistics (no data
+    read). Only valid under the writer lock after ``lake.recover()`` (no rows of a pending
+    batch to hide). None when the log lacks the numbers; the caller then counts rows."""
+    try:
+        import pyarrow as pa
+        from deltalake import DeltaTable
+        adds = pa.table(DeltaTable(str(Path(lake.path) / "telemetry"))
+                        .get_add_actions(flatten=True))
+        if "partition.day" not in adds.column_names or adds["num_records"].null_count \
+                or adds["partition.day"].null_count:
+            return None
+        df = pl.from_arrow(adds.select(["partition.day", "num_records"]))
+        df = df.group_by("partition.day").agg(pl.col("num_records").sum())
+        return {d: int(n) for d, n in df.iter_rows() if n}
+    except Exception:  # noqa: BLE001 - any surprise in the log: count the rows instead
+        return None
+
+
 def plan_analysis(con, settings: Any, state: dict | None, full: bool,
-                  have_derived: bool) -> AnalysisPlan:
+                  have_derived: bool, day_counts: dict[dt.date, int] | None = None
+                  ) -> AnalysisPlan:
     """Decide what to recompute from the lake views on ``con`` and the previous state.
 
-    New telemetry is found by comparing rows per UTC day (``day`` is the partition column,
-    so this costs no scan of the values) with the counts of the last run; only the changed
-    days are then read. Raises LakeError when there is no telemetry.
+    New telemetry is found by comparing rows per UTC day with the counts of the last run
+    (``day_counts``, e.g. from the Delta log; counted on ``con`` when None); only the
+    changed days are then read. Raises LakeError when there is no telemetry.
     """
     fp = fingerprint(settings)
     if not _has_view(con, "telemetry"):
         raise LakeError("the lake has no telemetry yet",
                         hint="Ingest drive logs first: fleetwatch ingest --mapping MAP LOGS...")
-    day_counts = dict(con.execute(
-        "SELECT day, count(*) FROM telemetry GROUP BY day").fetchall())
+    if day_counts is None:
+        day_counts = dict(con.execute(
+            "SELECT day, count(*) FROM telemetry GROUP BY day").fetchall())
     if not day_counts:
         raise LakeError("the telemetry table is empty",
                         hint="Ingest drive logs first: fleetwatch ingest --mapping MAP LOGS...")
@@ -219,18 +250,32 @@ def plan_analysis(con, settings: Any, state: dict | None, full: bool,
     if changed:
         con.execute("CREATE OR REPLACE TEMP TABLE _changed_days (day DATE)")
         con.executemany("INSERT INTO _changed_days VALUES (?)", [[d] for d in changed])
-        rows = con.execute("""
-            WITH nb AS (
-                SELECT unit_id, min(ts) AS first_new, min(day) AS first_new_day
-                FROM telemetry WHERE day IN (SELECT day FROM _changed_days)
-                GROUP BY unit_id)
-            SELECT nb.unit_id, nb.first_new,
-                   (SELECT max(t.ts) FROM telemetry AS t
-                     WHERE t.unit_id = nb.unit_id AND t.ts < nb.first_new
-                       AND t.day >= nb.first_new_day - 31 AND t.day <= nb.first_new_day)
-                       AS prev_ts
-            FROM nb""").fetchall()
+        # constant day bounds let the scans skip the other partitions
+        con.execute("""
+            CREATE OR REPLACE TEMP TABLE _nb AS
+            SELECT unit_id, min(ts) AS first_new, min(day) AS first_new_day
+            FROM telemetry
+            WHERE day >= $lo AND day <= $hi AND day IN (SELECT day FROM _changed_days)
+            GROUP BY unit_id""", {"lo": changed[0], "hi": changed[-1]})
+        nb = con.execute("SELECT unit_id, first_new, first_new_day FROM _nb").fetchall()
+        # each unit's previous sample, at most 31 days back: first in the day of its first
+        # new sample and the day before (where it almost always is), then further back
+        # for the units without one there
+        prev: dict[str, Any] = {}
+        for back in (1, 31):
+            todo = [r for r in nb if r[0] not in prev]
+            if not todo:
+                break
+            lo = min(r[2] for r in todo) - dt.timedelta(days=back)
+            hi = max(r[2] for r in todo)
+            prev.update(con.execute("""
+                SELECT nb.unit_id, max(t.ts) FROM telemetry AS t JOIN _nb AS nb USING (unit_id)
+                WHERE t.ts < nb.first_new AND t.day >= nb.first_new_day - $back
+                  AND t.day <= nb.first_new_day AND t.day >= $lo AND t.day <= $hi
+                GROUP BY nb.unit_id""", {"back": back, "lo": lo, "hi": hi}).fetchall())
+        rows = [(u, first_new, prev.get(u)) for u, first_new, _ in nb]
         con.execute("DROP TABLE _changed_days")
+        con.execute("DROP TABLE _nb")
         starts.append(_ts(changed[0]))      # rows gone from a day also change its results
         seg_starts: dict[str, list[dt.datetime]] = {}
         for u, t in resets:
@@ -285,10 +330,12 @@ def _chunks(plan: AnalysisPlan) -> list[tuple[dt.date, dt.date]]:
 
 # ---------------------------------------------------------------- the work
 def _schema_select(name: str, source: str, where: str = "") -> str:
-    """SELECT of exactly the contract columns of table ``name`` with their types (the lake
-    sorts by the table's key when it writes)."""
+    """SELECT of exactly the contract columns of table ``name`` with their types, in the
+    order of the table's key (the lake's write then finds the rows sorted and keeps them
+    as they are instead of sorting a copy)."""
     cols = ", ".join(f"CAST({c.name} AS {c.type}) AS {c.name}" for c in TABLES[name].columns)
-    return f"SELECT {cols} FROM {source} {where}"
+    order = ", ".join(TABLES[name].key)
+    return f"SELECT {cols} FROM {source} {where} ORDER BY {order}"
 
 
 def run_analysis(con, settings: Any, plan: AnalysisPlan,
@@ -322,6 +369,14 @@ def run_analysis(con, settings: Any, plan: AnalysisPlan,
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+def _release_memory() -> None:
+    """Hand freed Python and Arrow memory back before a large allocation."""
+    import pyarrow as pa
+
+    gc.collect()
+    pa.default_memory_pool().release_unused()
+
+
 _WCOLS = ("unit_id", "window_start", "day", "steady_samples", "slip_mean", "load_mean",
           "load_source", "ratio_cmd_mean", "n_out_mean", "p_in_mean")
 
@@ -339,10 +394,12 @@ def _unit_batches(per_unit: dict[str, int], budget: int) -> list[list[str]]:
     return [b for b in out if b]
 
 
-def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime
+def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime,
+                   ref_days: tuple[dt.date, dt.date] | None = None
                    ) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Steady windows of ``units``: those just computed, and those plus the older windows of
-    the units' reference periods (from the lake, for an incremental run)."""
+    the units' reference periods (from the lake, for an incremental run; ``ref_days``: the
+    first and last UTC day any reference period touches)."""
     cols = ", ".join(_WCOLS)
     con.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
     win_new = pl.from_arrow(con.sql(
@@ -353,6 +410,7 @@ def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime
                                    .dt.cast_time_unit("us"))
     if prev is None:
         return win_new, win_new
+    lo, hi = ref_days or (dt.date(1970, 1, 1), dt.date(9999, 12, 31))
     prev.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
     old = pl.from_arrow(prev.sql(
         f"SELECT {', '.join('w.' + c for c in _WCOLS)} "
@@ -360,7 +418,10 @@ def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime
         "ON w.unit_id = r.unit_id AND w.window_start >= r.ref_start "
         "AND w.window_start < r.ref_end "
         "WHERE w.steady_samples >= 2 AND w.window_start < $f "
-        "AND w.unit_id IN (SELECT unit_id FROM _units)", params={"f": from_ts}
+        # constant day bounds of all reference periods: the scan skips the other partitions
+        "AND w.day >= $lo AND w.day <= $hi "
+        "AND w.unit_id IN (SELECT unit_id FROM _units)",
+        params={"f": from_ts, "lo": lo, "hi": hi}
     ).to_arrow_table())
     prev.unregister("_units")
     old = old.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
@@ -427,6 +488,25 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     from_ts = _ts(plan.from_day)
     written: dict[str, int] = {}
 
+    def store(name: str, where: str = "") -> None:
+        """Hand table ``name`` (exactly its contract columns) to ``write``: one commit."""
+        params = {"from_day": plan.from_day} if where else None
+        tbl = con.sql(_schema_select(name, name, where), params=params).to_arrow_table()
+        written[name] = write(name, tbl, from_day)
+        del tbl
+        _release_memory()
+
+    # windows and events are final now: write them while Python holds little else (the
+    # lake's write needs about 1.5 times the table on top of it). The windows move out of
+    # DuckDB into one Arrow table that is both written and, as a view, read by the fits.
+    win_tbl = con.sql(_schema_select("windows", "windows")).to_arrow_table()
+    con.execute("DROP TABLE windows")
+    con.register("windows", win_tbl)
+    _release_memory()
+    written["windows"] = write("windows", win_tbl, from_day)
+    _release_memory()
+    store("events", "" if full else "WHERE day >= $from_day")
+
     # -- motor fits: the new weeks, the untouched old weeks, drift against the reference
     new_motor = (pl.concat(motor_weeks) if motor_weeks else
                  pl.DataFrame(schema={"unit_id": pl.String, "week_start": pl.Date,
@@ -447,15 +527,19 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
             "d": plan.from_day}).to_arrow_table())
         flat = pl.concat([old_flat.cast(flat.schema), flat])
     old_windows = not full and prev is not None and _has_view(prev, "windows")
+    ref_days = None
     if old_windows:
         prev.register("_ref_periods", segments.select("unit_id", "ref_start", "ref_end")
                       .to_arrow())
+        if segments.height:
+            ref_days = (segments["ref_start"].min().date() - dt.timedelta(days=1),
+                        segments["ref_end"].max().date() + dt.timedelta(days=1))
     per_unit = dict(con.execute("SELECT unit_id, count(*) FROM windows "
                                 "WHERE steady_samples >= 2 GROUP BY unit_id").fetchall())
     creep_parts, daily_parts, pm_parts = [], [], []
     for units in _unit_batches(per_unit, FIT_BATCH_WINDOWS):
         win_new, ref_windows = _batch_windows(con, prev if old_windows else None, units,
-                                              from_ts)
+                                              from_ts, ref_days)
         fl = flat.filter(pl.col("unit_id").is_in(units))
         cw_new = fits.drop_flatlined(fits.creep_windows(win_new, settings), fl,
                                      settings["window_min"])
@@ -489,21 +573,16 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     run_model(con, models["unit_days"], settings, {})
     tick()
 
-    # -- write (each table one atomic commit)
+    # -- write the rest (each table one atomic commit)
     for view in ("motor_constants", "creep_daily", "power_models"):
         con.unregister(view)
     del flat, daily
-    for name, src, where in (
-            ("windows", "windows", ""),
-            ("events", "events", "" if full else "WHERE day >= $from_day"),
-            ("efficiency", "efficiency", ""),
-            ("unit_days", "unit_days", "")):
-        sql = _schema_select(name, src, where)
-        params = {} if full or not where else {"from_day": plan.from_day}
-        tbl = con.sql(sql, params=params or None).to_arrow_table()
-        con.execute(f"DROP TABLE {src}")        # free DuckDB's copy before the lake's write
-        written[name] = write(name, tbl, from_day)
-        del tbl
+    con.unregister("windows")
+    del win_tbl
+    for name in ("window_power", "events", "day_stats"):
+        con.execute(f"DROP TABLE {name}")
+    store("efficiency")
+    store("unit_days")
     for name, df in (("motor_fits", motor_table), ("creep_fits", creep_table)):
         cols = [c.name for c in TABLES[name].columns]
         written[name] = write(name, df.select(cols).sort(list(TABLES[name].key)).to_arrow(),
@@ -546,8 +625,9 @@ def _write_state(lake, plan: AnalysisPlan) -> None:
     os.replace(tmp, p)
 
 
-def _run_health(lake, settings) -> str:
-    """Call fleetwatch.models.run_models when that stage is installed."""
+def _run_health(lake, settings, full: bool = False) -> str:
+    """Call fleetwatch.models.run_models when that stage is installed (``full``: over all
+    days; else it starts from its saved state where that is still valid)."""
     try:
         from . import models as health_models
     except ModuleNotFoundError as exc:
@@ -557,11 +637,13 @@ def _run_health(lake, settings) -> str:
     run = getattr(health_models, "run_models", None)
     if run is None:
         return "health models not installed"
-    res = run(lake, settings)
+    res = run(lake, settings, full=full)
     counts = res.get("status_counts") if isinstance(res, dict) else None
+    start = res.get("from_day") if isinstance(res, dict) else None
+    what = "health models ran" + (f" from {start}" if start else "")
     if counts:
-        return "health models ran (" + ", ".join(f"{k} {v}" for k, v in counts.items()) + ")"
-    return "health models ran"
+        return what + " (" + ", ".join(f"{k} {v}" for k, v in counts.items()) + ")"
+    return what
 
 
 def analyze(settings: Any, full: bool = False,
@@ -585,14 +667,17 @@ def analyze(settings: Any, full: bool = False,
         prev = lake.connect(["windows", "events", "motor_fits", "creep_fits"])
         try:
             have = all(lake.has_table(t) for t in DERIVED)
-            plan = plan_analysis(con, settings, _read_state(lake), full, have)
+            plan = plan_analysis(con, settings, _read_state(lake), full, have,
+                                 _day_counts_from_log(lake))
             report.full, report.reason = plan.full, plan.reason
             if not plan.empty:
                 def write(name: str, data: Any, from_day: Optional[dt.date]) -> int:
+                    part = PARTITIONED.get(name)
                     if from_day is None:
-                        lake.overwrite(name, data)
+                        lake.overwrite(name, data, partition_by=part)
                     else:
-                        lake.replace_where(name, data, f"day >= '{from_day.isoformat()}'")
+                        lake.replace_where(name, data, f"day >= '{from_day.isoformat()}'",
+                                           partition_by=part)
                     return data.num_rows
 
                 report.tables = run_analysis(con, settings, plan, write, progress, prev)
@@ -606,6 +691,6 @@ def analyze(settings: Any, full: bool = False,
         finally:
             con.close()
             prev.close()
-        report.models = _run_health(lake, settings)
+        report.models = _run_health(lake, settings, full=report.full)
     report.elapsed_s = time.perf_counter() - t0
     return report

@@ -21,6 +21,7 @@ normal variation only, not any fault.
 """
 from __future__ import annotations
 
+import hashlib
 from typing import Mapping, Sequence
 
 import numpy as np
@@ -73,7 +74,8 @@ class RelativeIsolationForest(FleetModel):
     random_state : seed of the forest (fixed: weekly reports must be reproducible).
 
     Learned: ``reference_`` (per unit and segment: median, scale and count of each
-    feature), ``forest_``, ``feature_names_in_``, ``n_features_in_``, ``n_reference_rows_``.
+    feature), ``forest_``, ``feature_names_in_``, ``n_features_in_``, ``n_reference_rows_``,
+    ``train_digest_`` (SHA-256 of the training matrix: the same digest, the same forest).
     """
 
     def __init__(self, features: Sequence[str] = DEFAULT_FEATURES, n_estimators: int = 100,
@@ -114,6 +116,7 @@ class RelativeIsolationForest(FleetModel):
             raise ModelError("no reference days to fit the isolation forest on",
                              hint="unit_days is empty; ingest logs and run analyze first.")
         X = to_matrix(train, zcols)
+        self.train_digest_ = hashlib.sha256(np.ascontiguousarray(X).tobytes()).hexdigest()
         self.forest_ = IsolationForest(
             n_estimators=int(self.n_estimators),
             max_samples=int(min(self.max_samples, X.shape[0])),
@@ -153,15 +156,19 @@ class RelativeIsolationForest(FleetModel):
             ref = pl.concat([ref, extra.select(ref.columns)], how="vertical_relaxed")
         return robust_z(seg, ref, feats)
 
-    def score(self, unit_days, maintenance=None) -> pl.DataFrame:
+    def score(self, unit_days, maintenance=None, since=None) -> pl.DataFrame:
         """The ``scores`` table: unit_id, day, score, is_reference, top_features.
 
         Days without any feature value (drive not running, no steady data) get no row: a
         score there would only say "like the reference", which nothing measured.
+        ``since`` (a date): only the rows of that day and later (each row is scored on its
+        own, so they equal those of a whole run; the references still come from every day).
         """
         z = self.transform(unit_days, maintenance)
         feats = list(self.feature_names_in_)
         zcols = [f"z_{f}" for f in feats]
+        if since is not None:
+            z = z.filter(pl.col("day") >= since)
         z = z.filter(pl.any_horizontal([pl.col(c).is_not_null() for c in zcols]))
         Z = to_matrix(z, zcols)
         s = self.score_samples(Z) if z.height else np.zeros(0)

@@ -376,6 +376,24 @@ class HealthRules(FleetModel):
         ``trends`` is the trends table (trend.py), ``scores`` the scores table (anomaly.py),
         ``events`` (optional) names the signal of a flatline in the reasons.
         """
+        return self.predict_resumable(unit_days, trends, scores, maintenance, events)[0]
+
+    def predict_resumable(self, unit_days, trends=None, scores=None, maintenance=None,
+                          events=None, since: dt.date | None = None,
+                          resume: dict | None = None, snapshot_days: Sequence[dt.date] = ()
+                          ) -> tuple[pl.DataFrame, dict]:
+        """``predict`` that can start part way and hand back its state for a later start.
+
+        The rules run day by day per unit, so the status of a day depends on every day
+        before it. ``snapshot_days``: for each of these days, the state of every unit just
+        before its first row on or after that day is returned (JSON-ready), keyed by the
+        day's ISO date and the unit. ``since`` with ``resume`` (one such snapshot, for the
+        day ``since``): only the rows on or after ``since`` are run, from that state; they
+        equal those of a whole run when the rows before ``since`` are those the snapshot
+        was taken on (the caller checks). ``trends`` and ``scores`` then need only the rows
+        from ``since``. Raises ModelError when a unit with rows before ``since`` has no
+        state in ``resume``.
+        """
         self._check_fitted()
         df = self._raw_flags(self._prepare(unit_days, trends, scores, maintenance))
         df = self._with_jumps(df)
@@ -383,27 +401,38 @@ class HealthRules(FleetModel):
         k, n, m = int(self.persist_k), int(self.persist_n), int(self.clear_m)
         out_rows: list[tuple] = []
         zfeats = [f for f in _ADVERSE if f"z_{f}" in df.columns]
+        snap_days = sorted(set(snapshot_days))
+        snapshots: dict[str, dict] = {d.isoformat(): {} for d in snap_days}
+        if since is not None:
+            before = set(df.filter(pl.col("day") < since)["unit_id"].unique().to_list())
+            missing = before - set(resume or {})
+            if missing:
+                raise ModelError(f"no saved health state for {len(missing)} unit(s) before "
+                                 f"{since}", hint="Run the health models over all days.")
+            df = df.filter(pl.col("day") >= since)
         for (uid,), g in df.group_by(["unit_id"], maintain_order=True):
-            chans = {
-                "slip": _Channel("slip", resets=True),
-                "anomaly": _Channel("anomaly", resets=True),
-                "actuator": _Channel("actuator", resets=True),
-                "gross_slip": _Channel("gross_slip", immediate=(2,), resets=True),
-                "stall": _Channel("stall", immediate=(2,)),
-                "sensor": _Channel("sensor", immediate=(1,)),
-            }
-            rows = g.to_dicts()
-            run_jump = {f: 0.0 for f in zfeats}
-            prev_adv: dict[str, list[float]] = {f: [] for f in zfeats}
-            quiet_days = {f: 0 for f in zfeats}
-            prev_status, run_since = None, None
-            for i, r in enumerate(rows):
+            st = _unpack_state((resume or {}).get(uid), zfeats) if since is not None \
+                else _initial_state(zfeats)
+            chans = st["chans"]
+            run_jump, prev_adv, quiet_days = st["run_jump"], st["prev_adv"], st["quiet_days"]
+            flat_hist = st["flat_hist"]             # _raw_sensor of the previous n-1 rows
+            prev_status, run_since = st["prev_status"], st["run_since"]
+            pending = list(snap_days)
+
+            def snap(day_iso: str) -> None:
+                snapshots[day_iso][uid] = _pack_state(chans, run_jump, prev_adv, quiet_days,
+                                                      flat_hist, prev_status, run_since)
+
+            for r in g.iter_rows(named=True):
                 day = r["day"]
+                while pending and pending[0] <= day:
+                    snap(pending.pop(0).isoformat())
                 if r["reset_day"]:
                     for c in chans.values():
                         if c.resets:
                             c.reset()
-                recent_flat = any(x["_raw_sensor"] for x in rows[max(0, i - n + 1): i + 1])
+                recent_flat = bool(r["_raw_sensor"]) or any(flat_hist)
+                flat_hist = (flat_hist + [r["_raw_sensor"]])[-(n - 1):] if n > 1 else []
                 # largest rise of each feature out of a normal state since it was last normal:
                 # tells a step (contamination, actuator) from a creep (wear). The rise is
                 # counted against the median of the previous _STEP_LOOKBACK observations and
@@ -416,10 +445,10 @@ class HealthRules(FleetModel):
                     adv = _f(r.get(f"_adv_{f}"))
                     if adv is None:
                         continue
-                    before = prev_adv[f]
-                    base = statistics.median(before) if len(before) >= 2 else None
+                    before_f = prev_adv[f]
+                    base = statistics.median(before_f) if len(before_f) >= 2 else None
                     jump = adv - base if base is not None and base < _Z_NORMAL else 0.0
-                    prev_adv[f] = (before + [adv])[-_STEP_LOOKBACK:]
+                    prev_adv[f] = (before_f + [adv])[-_STEP_LOOKBACK:]
                     if adv < _Z_NORMAL:
                         quiet_days[f] += 1
                         if quiet_days[f] >= 2:
@@ -443,11 +472,18 @@ class HealthRules(FleetModel):
                 reasons, causes = self._reasons(r, chans, flat_signals.get((uid, day)), status)
                 out_rows.append((uid, day, status, run_since, _f(r["slip_at_load__t_dtl"]),
                                  reasons, causes))
+            for d in pending:
+                snap(d.isoformat())
+        # units with no rows from ``since`` on keep their state for the next start
+        if since is not None:
+            for d in snapshots:
+                for uid, stt in (resume or {}).items():
+                    snapshots[d].setdefault(uid, stt)
         out = pl.DataFrame(out_rows, schema={"unit_id": pl.Utf8, "day": pl.Date,
                                              "status": pl.Utf8, "since": pl.Date,
                                              "days_to_limit": pl.Float64, "reasons": pl.Utf8,
                                              "causes": pl.Utf8}, orient="row")
-        return out.select(HEALTH_COLUMNS).sort("unit_id", "day")
+        return out.select(HEALTH_COLUMNS).sort("unit_id", "day"), snapshots
 
     def _with_jumps(self, df: pl.DataFrame) -> pl.DataFrame:
         """``_adv_<f>``: robust z signed towards damage (|z| where both ways are)."""
@@ -633,3 +669,54 @@ def _flatline_signals(events) -> dict:
          .group_by(pl.col("unit_id").cast(pl.Utf8), pl.col("day").cast(pl.Date))
          .agg(pl.col("signal").drop_nulls().unique().sort().str.join(", ")))
     return {(u, d): s for u, d, s in g.iter_rows() if s}
+
+
+# ---------------------------------------------------------------- saved rule state
+_CHANNELS = (("slip", (), True), ("anomaly", (), True), ("actuator", (), True),
+             ("gross_slip", (2,), True), ("stall", (2,), False), ("sensor", (1,), False))
+
+
+def _initial_state(zfeats: list[str]) -> dict:
+    return {"chans": {name: _Channel(name, immediate=imm, resets=res)
+                      for name, imm, res in _CHANNELS},
+            "run_jump": {f: 0.0 for f in zfeats}, "prev_adv": {f: [] for f in zfeats},
+            "quiet_days": {f: 0 for f in zfeats}, "flat_hist": [], "prev_status": None,
+            "run_since": None}
+
+
+def _iso(d: dt.date | None) -> str | None:
+    return None if d is None else d.isoformat()
+
+
+def _date(s: str | None) -> dt.date | None:
+    return None if s is None else dt.date.fromisoformat(s)
+
+
+def _pack_state(chans: dict, run_jump: dict, prev_adv: dict, quiet_days: dict,
+                flat_hist: list, prev_status: str | None, run_since: dt.date | None) -> dict:
+    """One unit's rule state as JSON-ready values (floats round-trip exactly in JSON)."""
+    return {"chans": {name: {"state": c.state, "hist": list(c.hist), "clean": c.clean,
+                             "since": _iso(c.since), "causes": list(c.causes),
+                             "last_hit": _iso(c.last_hit)} for name, c in chans.items()},
+            "run_jump": dict(run_jump), "prev_adv": {f: list(v) for f, v in prev_adv.items()},
+            "quiet_days": dict(quiet_days), "flat_hist": list(flat_hist),
+            "prev_status": prev_status, "run_since": _iso(run_since)}
+
+
+def _unpack_state(packed: dict | None, zfeats: list[str]) -> dict:
+    st = _initial_state(zfeats)
+    if packed is None:
+        return st
+    for name, c in st["chans"].items():
+        p = packed["chans"][name]
+        c.state, c.hist, c.clean = int(p["state"]), list(p["hist"]), int(p["clean"])
+        c.since, c.last_hit = _date(p["since"]), _date(p["last_hit"])
+        c.causes = tuple(p["causes"])
+    for f in zfeats:
+        st["run_jump"][f] = float(packed["run_jump"].get(f, 0.0))
+        st["prev_adv"][f] = [float(v) for v in packed["prev_adv"].get(f, [])]
+        st["quiet_days"][f] = int(packed["quiet_days"].get(f, 0))
+    st["flat_hist"] = list(packed["flat_hist"])
+    st["prev_status"] = packed["prev_status"]
+    st["run_since"] = _date(packed["run_since"])
+    return st

@@ -240,11 +240,13 @@ class WearTrend(FleetModel):
                                              "ref_level": pl.Float64, "ref_scale": pl.Float64}))
         return self
 
-    def predict(self, unit_days, maintenance=None, extra: bool = False) -> pl.DataFrame:
+    def predict(self, unit_days, maintenance=None, extra: bool = False,
+                asof_from: dt.date | None = None) -> pl.DataFrame:
         """The ``trends`` table: one row per unit, indicator and as-of day with a fit.
 
         ``extra=True`` adds ``segment_start``, ``ref_level`` and ``ref_scale`` (used by the
-        health rules).
+        health rules). ``asof_from``: only the as-of days on or after it (the fits still see
+        every earlier day they look back on, so these rows equal those of a whole run).
         """
         self._check_fitted()
         seg = assign_segments(as_frame(unit_days, "unit_days"), maintenance,
@@ -260,13 +262,18 @@ class WearTrend(FleetModel):
             x0 = int(x_all[0])
             t = (x_all - x0).astype(float)
             days = g["day"].to_numpy()
+            # as-of points to evaluate (all, or those on or after asof_from)
+            t_eval = t if asof_from is None else t[x_all >= (asof_from - epoch).days]
+            if not t_eval.size:
+                continue
+            d_eval = days[days.size - t_eval.size:]
             for ind in inds:
                 vals = g[ind].cast(pl.Float64).fill_nan(None)
                 # the day of a wear reset mixes old and new contact: no evidence either way
                 have = (vals.is_not_null() & ~g["reset_day"]).to_numpy()
                 if have.sum() < max(2, int(self.min_days)):
                     continue
-                fit = theil_sen_asof(t[have], vals.to_numpy()[have].astype(float), t,
+                fit = theil_sen_asof(t[have], vals.to_numpy()[have].astype(float), t_eval,
                                      float(self.window_days), float(self.confidence),
                                      int(self.min_days))
                 idx = np.nonzero(fit["n"] >= int(self.min_days))[0]
@@ -277,14 +284,14 @@ class WearTrend(FleetModel):
                     "unit_id": [uid] * idx.size,
                     "segment_start": [s_start] * idx.size,
                     "indicator": [ind] * idx.size,
-                    "as_of": days[idx],
+                    "as_of": d_eval[idx],
                     "since": (np.datetime64(epoch, "D") + first.astype("timedelta64[D]")),
                     "n_days": fit["n"][idx],
                     "slope_per_day": fit["slope"][idx],
                     "slope_low": fit["low"][idx],
                     "slope_high": fit["high"][idx],
-                    "level_now": fit["intercept"][idx] + fit["slope"][idx] * t[idx],
-                    "_span": t[idx] - fit["x_first"][idx],
+                    "level_now": fit["intercept"][idx] + fit["slope"][idx] * t_eval[idx],
+                    "_span": t_eval[idx] - fit["x_first"][idx],
                 }))
         schema_cols = TREND_COLUMNS + (["segment_start", "ref_level", "ref_scale"] if extra else [])
         if not parts:

@@ -48,7 +48,7 @@
 -- column: same_v_in  -  v_in equals the previous sample's.
 -- column: same_temp  -  temp equals the previous sample's.
 -- column: dt_prev_s  s  Seconds since the previous sample (null for a unit's first).
--- column: gap_seg  -  Pauses longer than gap_min_s so far in the scope (runs never span two).
+-- column: gap_seg  -  seq of the last sample that followed a pause longer than gap_min_s (0: none in the scope); runs never span two values.
 -- column: in_range  -  ts inside [from_ts, to_ts).
 WITH scope AS (
     SELECT unit_id, ts, day, v_in, i_in, p_in, n_in, n_out, ratio_cmd, t_out, temp,
@@ -95,9 +95,12 @@ flagged AS (
     FROM lagged
 ),
 settled AS (
+    -- last_value(... IGNORE NULLS) carries the latest reset forward (cheaper in DuckDB than
+    -- a running max over the same frame)
     SELECT *,
-           max(CASE WHEN settle_reset THEN ts END) OVER r AS reset_ts,
-           sum(CASE WHEN dt_prev_s > $gap_min_s THEN 1 ELSE 0 END) OVER r AS gap_seg
+           last_value(CASE WHEN settle_reset THEN ts END IGNORE NULLS) OVER r AS reset_ts,
+           coalesce(last_value(CASE WHEN dt_prev_s > $gap_min_s THEN seq END IGNORE NULLS)
+                        OVER r, 0) AS gap_seg
     FROM flagged
     WINDOW r AS (PARTITION BY unit_id ORDER BY ts ROWS UNBOUNDED PRECEDING)
 )
