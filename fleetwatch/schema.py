@@ -134,7 +134,7 @@ DERIVED_TABLES = (
            "is logged).", False),
         _c("temp_mean", "DOUBLE", "degC", "Mean temperature.", False),
         _c("completeness", "DOUBLE", "-", "Samples received / samples expected."),
-    ), key=("unit_id", "window_start"), partition_by=("day",),
+    ), key=("unit_id", "window_start"),
        written_by="analyze (sql/windows.sql)"),
     Table("events", "Discrete events per unit: gross slip, stall, ratio change while stopped, "
           "sensor flatline, data gap, clock jump.", (
@@ -213,7 +213,7 @@ DERIVED_TABLES = (
         _c("p_in_pred", "DOUBLE", "W", "Input power predicted by the unit's reference model.",
            False),
         _c("power_resid_pct", "DOUBLE", "%", "100*(p_in - p_in_pred)/p_in_pred.", False),
-    ), key=("unit_id", "window_start"), partition_by=("day",), written_by="analyze (fits)"),
+    ), key=("unit_id", "window_start"), written_by="analyze (fits)"),
     Table("scores", "Isolation-forest anomaly score per unit and day, with the features that "
           "drove it.", (
         _c("unit_id", "VARCHAR", "-", "Drive."),
