@@ -106,7 +106,8 @@ def run_demo(project: str | Path | None = None, units: int = 24, days: int = 120
 
     echo(f"Demo built in {time.perf_counter() - t0:.0f} s. Project: {root}")
     echo(f"Try: fleetwatch --project {root} sql \"SELECT unit_id, status, reasons FROM health "
-         f"WHERE day = (SELECT max(day) FROM health) ORDER BY status DESC\"")
+         f"WHERE day = (SELECT max(day) FROM health) ORDER BY status = 'normal', status, "
+         f"unit_id\"")   # alert, then watch, then normal
     if serve and _have("fleetwatch.dashboard"):
         from .dashboard import serve_dashboard
 
