@@ -25,6 +25,7 @@ read the previous chunk's file back; a file of one chunk is still one commit.
 """
 from __future__ import annotations
 
+import abc
 import codecs
 import csv
 import glob as globmod
@@ -355,14 +356,16 @@ class _ByteStream:
             self.raw.close()
 
 
-class _Source:
-    """Yields chunks: a frame of source columns plus ``_line`` (and ``_bad_json`` etc.)."""
+class _Source(abc.ABC):
+    """Yields chunks: a frame of source columns plus ``_line`` (and ``_bad_json`` etc.).
+    One subclass per file format (CSV, NDJSON, Parquet)."""
     fmt: str
     columns: list[str]
     notes: list[str]
 
+    @abc.abstractmethod
     def chunks(self) -> Iterator[pl.DataFrame]:
-        raise NotImplementedError
+        """The file's rows, in chunks of at most the configured chunk size."""
 
     def close(self):
         pass
