@@ -186,25 +186,6 @@ def _first_ts(con, where: str = "", params: dict | None = None) -> dict[str, dt.
     return {u: t.astimezone(UTC) for u, t in rows}
 
 
-def _day_counts_from_log(lake) -> dict[dt.date, int] | None:
-    """Telemetry rows per ``day`` partition from the Delta log's file statistics (no data
-    read). Only valid under the writer lock after ``lake.recover()`` (no rows of a pending
-    batch to hide). None when the log lacks the numbers; the caller then counts rows."""
-    try:
-        import pyarrow as pa
-        from deltalake import DeltaTable
-        adds = pa.table(DeltaTable(str(Path(lake.path) / "telemetry"))
-                        .get_add_actions(flatten=True))
-        if "partition.day" not in adds.column_names or adds["num_records"].null_count \
-                or adds["partition.day"].null_count:
-            return None
-        df = pl.from_arrow(adds.select(["partition.day", "num_records"]))
-        df = df.group_by("partition.day").agg(pl.col("num_records").sum())
-        return {d: int(n) for d, n in df.iter_rows() if n}
-    except Exception:  # noqa: BLE001 - any surprise in the log: count the rows instead
-        return None
-
-
 def plan_analysis(con, settings: Any, state: dict | None, full: bool,
                   have_derived: bool, day_counts: dict[dt.date, int] | None = None
                   ) -> AnalysisPlan:
@@ -669,7 +650,7 @@ def analyze(settings: Any, full: bool = False,
         try:
             have = all(lake.has_table(t) for t in DERIVED)
             plan = plan_analysis(con, settings, _read_state(lake), full, have,
-                                 _day_counts_from_log(lake))
+                                 lake.rows_per_partition("telemetry", "day"))
             report.full, report.reason = plan.full, plan.reason
             if not plan.empty:
                 def write(name: str, data: Any, from_day: Optional[dt.date]) -> int:

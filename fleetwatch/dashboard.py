@@ -323,28 +323,20 @@ def _scan_natively(con, lake, versions: dict[str, int]) -> list[str]:
     """Re-point the views of :data:`NATIVE_SCAN_TABLES` on ``con`` (from ``Lake.connect``)
     at DuckDB's own Parquet reader over the files of the Delta snapshot at ``versions``.
 
-    Only where that reads the same rows as the Arrow dataset: a table outside the ingest
-    batch gate (``lake.GATED_TABLES``), at Delta reader protocol 1 (no deletion vectors, no
-    column mapping), with at least one file, and whose columns (partition columns read back
-    from the hive-style paths) come out with the view's names and types; any other table,
-    or any error, keeps the lake's own view. Returns the tables changed.
-    (This belongs in ``Lake.connect``, for every reader; proposed to lake.py's owner.)
+    Only where that reads the same rows as the Arrow dataset (``Lake.snapshot_files`` says
+    when) and whose columns (partition columns read back from the hive-style paths) come
+    out with the view's names and types; any other table, or any error, keeps the lake's
+    own view. Returns the tables changed.
     """
-    from deltalake import DeltaTable
-
-    from .lake import GATED_TABLES
-
     done = []
     for name in NATIVE_SCAN_TABLES:
-        if name in GATED_TABLES or name not in versions:
+        if name not in versions:
             continue
         try:
-            table = DeltaTable(str(Path(lake.path) / name), version=versions[name])
-            proto = table.protocol()
-            files = table.file_uris()
-            parts = table.metadata().partition_columns
-            if proto.min_reader_version > 1 or proto.reader_features or not files:
+            found = lake.snapshot_files(name, versions[name])
+            if found is None:
                 continue
+            files, parts = found
             listed = ", ".join("'" + f.replace("'", "''") + "'" for f in files)
             # partition values live in the paths (col=value/), not in the files: DuckDB's
             # hive reading recovers them; the columns are listed in the lake view's order

@@ -179,6 +179,42 @@ class Lake:
 
     # ------------------------------------------------------------------ reading
 
+    def rows_per_partition(self, name: str, column: str = "day") -> dict[Any, int] | None:
+        """Rows per value of partition ``column`` of ``name``, from the Delta log's file
+        statistics (no data read). Counts every committed file, the rows of a pending
+        ingest batch included: call it under the writer lock after :meth:`recover`. None
+        when the table is missing, not partitioned by ``column`` or its log lacks counts."""
+        try:
+            dt = self._delta(name)
+            if dt is None:
+                return None
+            adds = pa.table(dt.get_add_actions(flatten=True))
+            key = f"partition.{column}"
+            if key not in adds.column_names or adds["num_records"].null_count \
+                    or adds[key].null_count:
+                return None
+            df = pl.from_arrow(adds.select([key, "num_records"]))
+            df = df.group_by(key).agg(pl.col("num_records").sum())
+            return {d: int(n) for d, n in df.iter_rows() if n}
+        except Exception:  # noqa: BLE001 - any surprise in the log: the caller counts rows
+            return None
+
+    def snapshot_files(self, name: str, version: int) -> tuple[list[str], list[str]] | None:
+        """(file URIs, partition columns) of ``name`` at ``version``, for readers that scan
+        the Parquet files themselves; None unless that reads exactly the table's rows: the
+        table exists with at least one file, is outside the ingest batch gate and needs
+        Delta reader protocol 1 (no deletion vectors, no column mapping). Partition values
+        are in the hive-style paths (``col=value/``), not in the files."""
+        from deltalake import DeltaTable
+        if name in GATED_TABLES or not self.has_table(name):
+            return None
+        table = DeltaTable(str(self._table_path(name)), version=version)
+        proto = table.protocol()
+        files = table.file_uris()
+        if proto.min_reader_version > 1 or proto.reader_features or not files:
+            return None
+        return files, list(table.metadata().partition_columns)
+
     def _raw_dataset(self, dt, name: str, file_pruning_predicate: str | None = None
                      ) -> pds.Dataset:
         # A native local filesystem: deltalake's default Python filesystem handler can hang

@@ -285,3 +285,23 @@ def test_sort_by_key_is_stable_and_puts_missing_keys_last():
     assert _sort_by_key(ordered, ["k", "x"]) is ordered
     tm = pa.table({"k": ["b", "a", "b", "a"], "x": [1.0, 1.0, 2.0, 2.0], "i": [0, 1, 2, 3]})
     assert _sort_by_key(tm, ["k", "x"]).column("i").to_pylist() == [1, 3, 0, 2]
+
+
+def test_rows_per_partition_from_the_log_match_a_count(tmp_path):
+    lake = Lake(tmp_path / "lake")
+    assert lake.rows_per_partition("telemetry") is None              # no table yet
+    with lake.writer("test"):
+        lake.append("telemetry", _tele(n=300, unit="U1", step_s=600))   # ~2 days
+        lake.append("telemetry", _tele(n=50, unit="U2", step_s=3600))
+    got = lake.rows_per_partition("telemetry", "day")
+    want = dict(lake.read("telemetry").group_by("day").len().iter_rows())
+    assert got == want and sum(got.values()) == 350
+    assert lake.rows_per_partition("telemetry", "unit_id") is None   # not a partition
+
+
+def test_snapshot_files_only_for_plain_ungated_tables(tmp_path):
+    lake = Lake(tmp_path / "lake")
+    with lake.writer("test"):
+        lake.append("telemetry", _tele(n=20))
+    assert lake.snapshot_files("telemetry", lake.version("telemetry")) is None   # gated
+    assert lake.snapshot_files("windows", 0) is None                             # missing
