@@ -36,7 +36,8 @@ from .errors import UsageError
 
 __all__ = [
     "serve_dashboard", "DashboardServer", "app_path", "dashboard_command",
-    "status_label", "status_colour", "SAFETY_CAPTION", "chart_spec", "with_markers",
+    "status_label", "status_colour", "SAFETY_CAPTION", "chart_spec", "chart_alt",
+    "with_markers",
     "marker_layer",
     "cached", "lake_versions", "lake_snapshot", "LakeSnapshot",
 ]
@@ -85,6 +86,10 @@ def dashboard_command(host: str, port: int) -> list[str]:
         "--server.fileWatcherType", "none",
         "--browser.gatherUsageStats", "false",
         "--global.developmentMode", "false",
+        # Streamlit runs a full gc.collect() after every script run by default: 0.1-0.4 s
+        # with Altair, pandas and polars loaded, paid between the Fleet page's run that
+        # switches page and the Unit page's run. Python's own generational GC still runs.
+        "--runner.postScriptGC", "false",
         "--client.toolbarMode", "minimal",
         "--theme.base", "light",
         "--theme.primaryColor", PRIMARY_COLOUR,
@@ -549,33 +554,40 @@ def filter_fleet(overview, lines=(), statuses=(), sort: str = "Urgency"):
     return out.sort(by, descending=desc, nulls_last=True)
 
 
+#: Status words (with symbols) in the fleet table's order of urgency, and their colours.
+_TABLE_STATUSES = ("alert", "watch", "normal", None)
+
+
 def fleet_display(overview):
-    """The unit table as shown: status as symbol + word in its colour (a pandas Styler; the
-    page shows missing values as '–')."""
+    """The unit table as shown: status as a one-item list holding its symbol and word
+    (drawn as a label in the status colour by :func:`fleet_column_config`; no pandas
+    Styler, whose first use costs 0.3-1 s of imports and every rerun 0.04 s); the page
+    shows missing values as '–'."""
     import polars as pl
 
-    shown = overview.with_columns(
-        pl.col("status").map_elements(status_label, return_dtype=pl.String),
+    return overview.with_columns(
+        pl.col("status").map_elements(lambda s: [status_label(s)],
+                                      return_dtype=pl.List(pl.String)),
         pl.col("since").cast(pl.String),
+        pl.col("days_to_limit").round(0),
     ).select("unit_id", "line", "status", "since", "days_to_limit", "main_reason", "last_data")
-    colours = {status_label(s): status_colour(s) for s in ("normal", "watch", "alert", None)}
-    return (shown.to_pandas().style
-            .map(lambda v: f"color: {colours.get(v, '#4D4D4D')}; font-weight: 600",
-                 subset=["status"])
-            .format("{:.0f}", subset=["days_to_limit"]))
 
 
 def fleet_column_config() -> dict:
+    """Column labels and formats of the unit table; the status column shows each word
+    as a label in its status colour (colour always with its symbol and word)."""
     import streamlit as st
 
     return {
         "unit_id": st.column_config.TextColumn("Unit"),
         "line": st.column_config.TextColumn("Line"),
-        "status": st.column_config.TextColumn("Status"),
+        "status": st.column_config.MultiselectColumn(
+            "Status", options=[status_label(s) for s in _TABLE_STATUSES],
+            color=[status_colour(s) for s in _TABLE_STATUSES]),
         "since": st.column_config.TextColumn("Since (UTC day)"),
         "days_to_limit": st.column_config.NumberColumn(
-            "Days to limit", help="Median days until steady slip reaches the wear limit; "
-            "– when no crossing is predicted."),
+            "Days to limit", format="%d", help="Median days until steady slip reaches the "
+            "wear limit; – when no crossing is predicted."),
         "main_reason": st.column_config.TextColumn("Main reason", width="large"),
         "last_data": st.column_config.DatetimeColumn("Last data received (UTC)",
                                                      format="YYYY-MM-DD HH:mm"),
@@ -899,11 +911,43 @@ def chart_spec(chart) -> dict:
     # fit the width to the page column, keep the chart's own plot height (Streamlit's
     # default "fit" squeezes legends and axes into that height)
     spec.setdefault("autosize", {"type": "fit-x", "contains": "padding"})
+    # Draw on a canvas: Streamlit's default for small charts is SVG, one DOM node per
+    # point, rule and label (200-550 per chart here) for the browser to style and lay out.
+    # A canvas has no per-mark accessibility tree, so Vega-Lite's per-mark ARIA
+    # descriptions (an expression evaluated for every point) are switched off too; the
+    # chart's accessible name comes from its titles (chart_alt, passed as Streamlit's alt).
+    spec.setdefault("usermeta", {}).setdefault("embedOptions", {}).setdefault(
+        "renderer", "canvas")
     cfg = spec.setdefault("config", {})
+    cfg.setdefault("aria", False)
     cfg.setdefault("font", FONT)
     cfg.setdefault("view", {"stroke": "#d0d0d0"})
     cfg.setdefault("title", {"anchor": "start", "fontSize": 13})
     return spec
+
+
+def chart_alt(spec: dict | None) -> str | None:
+    """A short text alternative for a chart: its titles (stacked panels and layers
+    included), joined with '; '; None when it has none."""
+    titles: list[str] = []
+
+    def walk(node: Any) -> None:
+        if not isinstance(node, dict):
+            return
+        t = node.get("title")
+        if isinstance(t, dict):
+            t = t.get("text")
+        if isinstance(t, list):
+            t = " ".join(map(str, t))
+        if t and str(t) not in titles:
+            titles.append(str(t))
+        for key in ("layer", "vconcat", "hconcat", "concat"):
+            for sub in node.get(key) or ():
+                walk(sub)
+
+    walk(spec)
+    return "; ".join(titles) or None
+
 
 def _marker_layer(markers):
     """Vertical rules at events (solid) and maintenance (dashed), colour and dash by source."""
@@ -984,20 +1028,25 @@ class UnitView:
 
 def stack_specs(specs: list[dict]) -> dict | None:
     """One Vega-Lite vertical stack of ``chart_spec`` outputs (None when none): the browser
-    sets up one chart (a Streamlit element, a Vega view) instead of several. With the
+    sets up one chart (a Streamlit element, a Vega view) instead of several. The panels
+    share one x (time) scale, and only the bottom panel draws the axis labels and title. With the
     smaller point budget this took the Unit page's browser main-thread CPU from about
     2.4 s to 1.2-1.9 s (measured at load 9-16 on 2 cores)."""
     specs = [s for s in specs if s is not None]
     if not specs:
         return None
-    if len(specs) == 1:
+    if len(specs) == 1 and "vconcat" not in specs[0]:
         return specs[0]
     out: dict[str, Any] = {"$schema": specs[0].get("$schema"), "config": specs[0]["config"],
-                           "datasets": {}, "vconcat": [], "spacing": 22}
+                           "usermeta": specs[0].get("usermeta", {}),
+                           "datasets": {}, "vconcat": [], "spacing": 12,
+                           # one time scale for every panel: the panels line up, and
+                           # only the bottom one needs its axis labels
+                           "resolve": {"scale": {"x": "shared"}}}
     for spec in specs:
         spec = dict(spec)
         out["datasets"].update(spec.pop("datasets", {}))
-        for key in ("$schema", "config", "autosize", "spacing"):
+        for key in ("$schema", "config", "autosize", "spacing", "usermeta"):
             spec.pop(key, None)
         if "vconcat" in spec and set(spec) <= {"vconcat", "data"}:
             # a stack itself: lift its panels (with the data they inherit), so that every
@@ -1006,9 +1055,25 @@ def stack_specs(specs: list[dict]) -> dict | None:
             out["vconcat"] += [{**shared, **panel} for panel in spec["vconcat"]]
         else:
             out["vconcat"].append(spec)
+    for panel in out["vconcat"][:-1]:
+        _hide_x_labels(panel)
     if out["$schema"] is None:
         out.pop("$schema")
     return out
+
+
+def _hide_x_labels(node: dict) -> None:
+    """Drop the time axis' labels, ticks and title of a stacked panel (and its layers);
+    the bottom panel, on the same x scale, carries them. Grid lines stay."""
+    enc = node.get("encoding") or {}
+    x = enc.get("x")
+    if isinstance(x, dict) and x.get("axis", {}) is not None:
+        # new dicts, not edits: the marker layer's encoding is shared by every panel
+        node["encoding"] = {**enc, "x": {**x, "axis": {**(x.get("axis") or {}),
+                                                       "labels": False, "ticks": False,
+                                                       "title": None}}}
+    for sub in node.get("layer") or ():
+        _hide_x_labels(sub)
 
 
 def unit_view(source, unit_id: str, start: dt.date, end: dt.date, limit: float,

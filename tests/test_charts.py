@@ -166,3 +166,34 @@ def test_to_svg_is_inline_and_offline(lake_week):
     assert "http" not in svg and "xmlns" not in svg
     assert "\u25b2 alert: 2" in svg                  # the word is drawn, not only the colour
     assert svg.count("<svg") == 1 and svg.rstrip().endswith("</svg>")
+
+
+def test_fast_data_transformer_gives_altairs_own_values(lake_week):
+    """charts registers a quicker data transformer for polars frames; the specs (values and
+    dataset names) are the same as with Altair's default one, and the row cap still holds."""
+    lake, _ = lake_week
+    builders = [
+        lambda: ch.ratio_chart(vw.ratio_series(lake, "L1-U03", max_points=300)),
+        lambda: ch.power_chart(vw.power_series(lake, "L1-U01", max_points=300)),
+        lambda: ch.anomaly_scores_chart(vw.anomaly_scores(lake, "L1-U01"), 0.62),
+        lambda: ch.unit_slip_chart(vw.unit_slip_series(lake, "L1-U01")),
+    ]
+    assert alt.data_transformers.active == "fleetwatch"
+    fast = [json.dumps(b().to_dict(validate=False), sort_keys=True) for b in builders]
+    with alt.data_transformers.enable("default"):
+        slow = [json.dumps(b().to_dict(validate=False), sort_keys=True) for b in builders]
+    assert fast == slow
+    # a raw temporal column is left to Altair (same text as before), the row cap applies
+    raw = pl.DataFrame({"day": [dt.date(2026, 1, 5)], "v": [1.0]})
+    assert ch._polars_values(raw)["values"][0]["day"].startswith("2026-01-05")
+    with pytest.raises(alt.MaxRowsError):
+        ch._polars_values(pl.DataFrame({"v": range(6)}), max_rows=5)
+
+
+def test_dense_time_series_carry_no_per_point_tooltips(lake_week):
+    """Hundreds of points each: a tooltip is an expression per point for the browser."""
+    lake, _ = lake_week
+    for chart in (ch.ratio_chart(vw.ratio_series(lake, "L1-U03", max_points=300)),
+                  ch.temperature_chart(vw.temperature_series(lake, "L1-U01",
+                                                             max_points=300))):
+        assert not list(_walk(_spec(chart), "tooltip"))

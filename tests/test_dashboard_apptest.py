@@ -79,6 +79,13 @@ def _titles(spec: dict) -> list[str]:
     return out
 
 
+def _page_hash(url_path: str) -> str:
+    """The script hash Streamlit gives the app page served at ``/url_path`` (st.Page)."""
+    from streamlit.util import calc_hash
+
+    return calc_hash(url_path)
+
+
 def _open_unit(app, unit: str) -> AppTest:
     """The Unit page opened by its address (``/unit?unit=...``)."""
     at = _ok(app().run())
@@ -97,13 +104,20 @@ def test_fleet_page_counts_statuses_with_words(app, project):
     metrics = {m.label: int(m.value) for m in at.metric}
     want = {s: list(truth.status_end.values()).count(s) for s in ("alert", "watch", "normal")}
     assert metrics == {dash.status_label(s): n for s, n in want.items()}
-    # every status colour comes with its symbol and word
+    # every status colour comes with its symbol and word: the status column shows each
+    # unit's word as a label, coloured by the column's options
     table = at.dataframe[0].value
     assert len(table) == len(truth.status_end)
-    assert set(table["status"]) <= {dash.status_label(s) for s in want}
+    words = [list(v) for v in table["status"]]
+    assert all(len(w) == 1 for w in words)
+    assert {w[0] for w in words} <= {dash.status_label(s) for s in want}
     first = table.iloc[0]
-    assert first["status"] == dash.status_label("alert")      # most urgent first
+    assert list(first["status"]) == [dash.status_label("alert")]      # most urgent first
     assert first["main_reason"]
+    status_col = json.loads(at.dataframe[0].proto.columns)["status"]["type_config"]
+    options = {o["value"]: o["color"] for o in status_col["options"]}
+    assert options == {dash.status_label(s): dash.status_colour(s)
+                       for s in ("alert", "watch", "normal", None)}
     # the safety caption is on every page (sidebar)
     assert any("lock" in c.value and "qualified people decide" in c.value
                for c in at.sidebar.caption)
@@ -139,8 +153,15 @@ def test_choosing_a_unit_opens_it(app, project):
     _, truth = project
     wear_unit = next(u for u, c in truth.conditions.items() if c == "wear")
     at = _ok(app().run())
+    link = at.get("page_link")[0].proto
+    assert link.label == "Open unit" and link.disabled          # nothing chosen yet
     at.selectbox(key="open_unit").set_value(wear_unit).run()
-    at.button(key="open_unit_btn").click().run()
+    link = _ok(at).get("page_link")[0].proto
+    assert not link.disabled and link.query_string == f"unit={wear_unit}"
+    assert link.page_script_hash == _page_hash("unit")
+    # the browser follows the link: the Unit page runs with the unit in the address
+    at.query_params["unit"] = wear_unit
+    at.switch_page(UNIT_PAGE).run()
     _ok(at)
     assert at.title[0].value == "Unit"
     assert at.selectbox(key="unit_pick").value == wear_unit
@@ -171,6 +192,66 @@ def test_unit_page_draws_every_section(app, project):
     assert list(changes["status"])[2:] == [dash.status_label("normal")]
     top = next(f for f in frames if "top_features" in f.columns)
     assert top["top_features"].iloc[0].startswith("slip_at_load z=")
+
+
+def test_creep_week_control_picks_the_creep_chart_week(app, project):
+    """The creep week is chosen in the page's control row, with the time range; the creep
+    chart follows it."""
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "wear")
+    at = _open_unit(app, unit)
+    box = at.selectbox(key="unit_creep_week")
+    newest, older = box.options[0], box.options[1]
+    assert box.value == dash.weeks_in(*_shown_range(at))[0]
+
+    def creep_title() -> str:
+        return next(t for s in _specs(_ok(at)) for t in _titles(s) if "creep vs load" in t)
+    assert newest in creep_title()
+    box.set_value(dash.weeks_in(*_shown_range(at))[1]).run()
+    assert older in creep_title() and newest not in creep_title()
+
+
+def _shown_range(at: AppTest) -> tuple[dt.date, dt.date]:
+    """The Unit page's (start, end) from its 'Showing A to B' caption."""
+    import re
+
+    cap = next(c.value for c in at.caption if c.value.startswith("Showing "))
+    a, b = re.match(r"Showing (\S+) to (\S+) ", cap).groups()
+    return dt.date.fromisoformat(a), dt.date.fromisoformat(b)
+
+
+def _x_axes(panel: dict) -> list:
+    """The x axis settings of a stacked panel and its layers."""
+    out = [panel["encoding"]["x"].get("axis")] if "x" in panel.get("encoding", {}) else []
+    return out + [a for sub in panel.get("layer", []) for a in _x_axes(sub)]
+
+
+def test_unit_charts_are_light_canvases_with_a_text_alternative(app, project):
+    """The browser's share of the Unit page: canvas, no per-mark ARIA descriptions, and the
+    stacks' panels on one shared time scale with the labels only under the bottom one;
+    screen readers get the chart titles through Streamlit's alt."""
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "wear")
+    at = _open_unit(app, unit)
+    charts = at.get("vega_lite_chart")
+    assert len(charts) == 4
+    for c in charts:
+        spec = json.loads(c.proto.spec)
+        assert spec["usermeta"]["embedOptions"]["renderer"] == "canvas"
+        assert spec["config"]["aria"] is False
+        assert c.proto.alt and c.proto.alt == dash.chart_alt(spec)
+        assert all(t in c.proto.alt for t in _titles(spec))
+    stacks = [json.loads(c.proto.spec) for c in charts]
+    stacks = [s for s in stacks if "vconcat" in s]
+    assert len(stacks) == 2                      # operation (5 panels), health (2)
+    for stack in stacks:
+        assert stack["resolve"]["scale"]["x"] == "shared"
+        *upper, bottom = stack["vconcat"]
+        for panel in upper:
+            axes = _x_axes(panel)
+            assert axes and all(a["labels"] is False and a["title"] is None for a in axes)
+        assert all(not a or a.get("labels", True) for a in _x_axes(bottom))
+    assert "time (UTC)" in _text(stacks[0]["vconcat"][-1])
 
 
 def test_unit_time_range_changes_what_is_drawn(app, project):
@@ -517,6 +598,9 @@ def test_server_command_is_local_headless_and_quiet(project):
     assert opts["--server.port"] == "8501"
     assert opts["--server.headless"] == "true"
     assert opts["--browser.gatherUsageStats"] == "false"
+    # no full garbage collection between script runs (it sat between the Fleet and Unit
+    # pages' runs); Python's own collector still runs
+    assert opts["--runner.postScriptGC"] == "false"
 
 
 def test_a_plain_install_ships_the_app():

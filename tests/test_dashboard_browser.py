@@ -155,8 +155,11 @@ def test_every_page_in_a_real_browser(served, shots):
         box = page.get_by_test_id("stSelectbox").filter(has_text="Open a unit")
         box.click()
         page.get_by_role("option", name=worn, exact=True).click()
+        # the choice reruns the page, which points the "Open unit" link at the unit
+        link = page.locator(f'[data-testid="stPageLink-NavLink"][href$="unit={worn}"]')
+        link.wait_for(timeout=60000)
         page.wait_for_function(IDLE)
-        page.get_by_role("button", name="Open unit").click()
+        link.click()
         page.wait_for_url(re.compile(rf"/unit\?unit={worn}$"), timeout=60000)
         settle(page, "Unit", charts=4)   # slip, creep, operation stack, health stack
         body = page.get_by_test_id("stMain").inner_text()

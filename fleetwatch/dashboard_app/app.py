@@ -9,7 +9,11 @@ from pathlib import Path
 
 import streamlit as st
 
-import fleetwatch.charts  # noqa: F401  (Altair: ~1 s to import; pay it once, at the first page)
+# Imports every data page needs, paid once by the session's first page whichever it is:
+# Altair (~1 s), and the lake's readers (deltalake, pyarrow.dataset: 0.5-1.3 s) that the
+# first data call of the Fleet or Unit page would otherwise pay in the middle of its run.
+import fleetwatch.charts  # noqa: F401
+import fleetwatch.lake  # noqa: F401
 import fleetwatch.views  # noqa: F401
 from fleetwatch import dashboard as dash
 

@@ -52,4 +52,4 @@ def chart(spec: dict | None, empty: str | None = None) -> None:
         if empty:
             st.info(empty)
         return
-    st.vega_lite_chart(spec=spec, width="stretch", theme=None)
+    st.vega_lite_chart(spec=spec, width="stretch", theme=None, alt=dash.chart_alt(spec))

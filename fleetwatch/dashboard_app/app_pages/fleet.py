@@ -12,10 +12,6 @@ from fleetwatch.dashboard_app import ui
 
 UNIT_PAGE = Path(__file__).with_name("unit.py")
 
-# "Open unit" was clicked: go at once, without drawing this page again first.
-if opened := st.session_state.pop("fleet_open_request", None):
-    st.switch_page(UNIT_PAGE, query_params={"unit": opened})
-
 settings = ui.settings_or_stop()
 st.title("Fleet")
 
@@ -46,8 +42,11 @@ st.caption(f"{shown.height} of {overview.height} units shown. Click a column hea
 o1, o2 = st.columns([3, 1], vertical_alignment="bottom")
 choice = o1.selectbox("Open a unit", shown["unit_id"].to_list(), key="open_unit",
                       index=None, placeholder="Choose a unit")
-o2.button("Open unit", key="open_unit_btn", disabled=choice is None, type="primary",
-          on_click=lambda: st.session_state.update(fleet_open_request=choice))
+# a link, not a button: the browser asks for the Unit page straight away (one script run),
+# where a button would rerun this page first only to switch pages from there
+o2.page_link(UNIT_PAGE, label="Open unit",
+             query_params={"unit": choice} if choice is not None else None,
+             disabled=choice is None)
 
 ui.chart(ui.load(dash.fleet_slip_spec, settings, limit=settings.slip_limit),
          empty="No steady slip at rated load yet, so no fleet distribution.")
