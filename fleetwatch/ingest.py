@@ -17,11 +17,15 @@ row (see lake.py), and the next writer deletes the rows of a batch that was kill
 so a re-run ends complete, without duplicates and with exact accounting.
 
 Speed: three threads share the work of a file (see "pipeline" below): one reads and parses
-the next chunk, the main thread validates and dedupes the current one, one writes the previous
-one to the lake. Dedupe waits for the earlier writes, so it sees what a sequential run would.
-Rows whose key the next chunk may continue (the last timestamp of a time-ordered chunk, the
-last unit of a unit-ordered one) are held back to it, so a chunk's lake lookup never has to
-read the previous chunk's file back; a file of one chunk is still one commit.
+the next chunk, the main thread validates, dedupes and sorts the current one, one writes the
+previous one to the lake. Dedupe waits for the earlier writes, so it sees what a sequential run
+would. Rows whose key the next chunk may continue (the last timestamp of a time-ordered chunk,
+the last unit of a unit-ordered one) are held back to it, so a chunk's lake lookup never has to
+read the previous chunk's file back; a file of one chunk is still one commit. The content hash
+is worked out in a fourth thread while the first chunk is parsed; nothing is written before it
+is known. CSV values of numeric columns are parsed as numbers by the CSV reader; the few rows
+where that gives null (empty or not a number) or that fail a check are read again as text and
+validated exactly as the text path would (``_recheck_as_text``), so quarantine keeps raw text.
 """
 from __future__ import annotations
 
@@ -31,10 +35,12 @@ import csv
 import glob as globmod
 import gzip
 import hashlib
+import importlib
 import json
 import os
 import queue
 import secrets
+import sys
 import threading
 import tomllib
 import zlib
@@ -45,13 +51,21 @@ from pathlib import Path
 from typing import Callable, Iterator
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
+# Polars' allocator (jemalloc) gives freed memory back to the kernel after 0.5 s by default.
+# Ingest frees and allocates a few hundred MB per chunk, about once a second, so every chunk
+# faulted its memory in again: kernel time was about a third of ingest CPU. Keeping freed
+# pages for 10 s lets the next chunk reuse them (measured: ingest CPU -20 %, peak RSS +10 %).
+# jemalloc reads this once, when polars is loaded, so it only applies when this module is
+# imported before polars (as `fleetwatch ingest` does); a value the user set is kept.
+if "polars" not in sys.modules and "_RJEM_MALLOC_CONF" not in os.environ:
+    os.environ["_RJEM_MALLOC_CONF"] = "dirty_decay_ms:10000,muzzy_decay_ms:10000"
+
 import polars as pl
 import pyarrow as pa
-import pyarrow.dataset as pds
 import pyarrow.parquet as pq
 
 from .errors import InputError, UsageError
-from .lake import INGEST_BATCH_PREFIX, Lake
+from .lake import INGEST_BATCH_PREFIX, Lake, sort_order
 from .units import COLUMN_QUANTITY, unit_factor
 
 __all__ = ["ingest_files", "IngestReport", "FileReport", "Mapping", "load_mapping",
@@ -285,12 +299,13 @@ class _Refuse(Exception):
 
 def _file_sha256(path: Path) -> str:
     h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while True:
-            b = fh.read(1 << 22)
-            if not b:
-                break
-            h.update(b)
+    # one buffer for all reads (no fresh pages per read); large reads, as the thread needs
+    # the GIL back after each read and each update while the pipeline's threads run
+    buf = bytearray(1 << 24)
+    view = memoryview(buf)
+    with open(path, "rb", buffering=0) as fh:
+        while n := fh.readinto(buf):
+            h.update(view[:n])
     return h.hexdigest()
 
 
@@ -357,15 +372,19 @@ class _ByteStream:
 
 
 class _Source(abc.ABC):
-    """Yields chunks: a frame of source columns plus ``_line`` (and ``_bad_json`` etc.).
+    """Yields chunks: (a frame of source columns plus ``_line``, ``_malformed`` and for
+    NDJSON ``_json``; a ``_Retext`` when the frame holds typed columns, else None).
     One subclass per file format (CSV, NDJSON, Parquet)."""
     fmt: str
     columns: list[str]
     notes: list[str]
 
     @abc.abstractmethod
-    def chunks(self) -> Iterator[pl.DataFrame]:
+    def chunks(self) -> Iterator[tuple[pl.DataFrame, _Retext | None]]:
         """The file's rows, in chunks of at most the configured chunk size."""
+
+    def use_typed(self, columns) -> None:
+        """Parse these numeric columns as numbers when the format allows (CSV does)."""
 
     def close(self):
         pass
@@ -484,6 +503,7 @@ class _CsvSource(_Source):
         avg = max(8.0, len(sample_b) / max(1, sample_b.count(b"\n") + 1))
         self.block_bytes = int(max(1 << 12, min(chunk_rows * avg * 1.05, 1 << 30)))
         self.next_line = 2
+        self.typed: list[str] = []
 
     @staticmethod
     def _cut(buf, end: int | None = None, quotes_before: int = 0) -> int | None:
@@ -545,9 +565,85 @@ class _CsvSource(_Source):
             pending = [rest] if rest else []
             pending_len, pending_quotes = len(rest), rest.count(b'"')
 
-    def chunks(self) -> Iterator[pl.DataFrame]:
+    def use_typed(self, columns) -> None:
+        """Read ``columns`` (source columns holding numbers) as Float64 while parsing.
+
+        Parsing text and casting it afterwards cost a third of the validation time; the CSV
+        reader parses numbers directly. Any value it cannot parse becomes null and its row
+        is read again as text (see ``chunks``), so results never depend on this.
+        """
+        self.typed = [c for c in columns if c in self.columns]
+
+    def _text_frame(self, data: bytes, first_line: int, lines: pl.Series | None = None
+                    ) -> pl.DataFrame:
+        """Parse ``data`` with every column as text: the source columns, ``_extra_<i>``,
+        ``_line`` and ``_malformed``; lines holding only blanks or delimiters are dropped.
+        ``lines`` gives the line number of every physical line when ``data`` is not a
+        contiguous run of the file's lines."""
         names = self.columns + [f"_extra_{i + 1}" for i in range(_N_EXTRA)]
-        schema = {n: pl.String for n in names}
+        df = pl.read_csv(data, has_header=False, separator=self.delimiter,
+                         quote_char='"', schema={n: pl.String for n in names},
+                         missing_columns="insert", truncate_ragged_lines=True,
+                         empty_string_is_null=False, raise_if_empty=False, infer_schema=False)
+        if df.height == 0:
+            return df.with_columns(_line=pl.lit(None, pl.Int64), _malformed=pl.lit(False))
+        physical = data.count(b"\n") + (0 if data.endswith(b"\n") else 1)
+        if lines is not None:
+            if physical != df.height:
+                raise RuntimeError("lines read again as text did not give one row each")
+            line = lines.alias("_line")
+        else:
+            idx = pl.int_range(0, pl.len(), dtype=pl.Int64)
+            if physical == df.height:
+                line = idx + first_line
+            else:  # quoted fields hold line breaks: count them per row
+                nl = pl.sum_horizontal([pl.col(c).str.count_matches("\n", literal=True)
+                                        .fill_null(0) for c in names]).cast(pl.Int64)
+                line = idx + first_line + (nl.cum_sum() - nl)
+        df = df.with_columns(_line=line)
+        # lines holding only blanks or delimiters are not rows
+        maybe = df[names[0]].fill_null("").str.strip_chars() == ""
+        if maybe.any():
+            blank = pl.all_horizontal([pl.col(c).fill_null("").str.strip_chars() == ""
+                                       for c in names])
+            df = df.filter(~blank)
+        return df.with_columns(_malformed=_extras_filled(df, strip=True))
+
+    def _typed_frame(self, data: bytes, first_line: int, n_newlines: int
+                     ) -> pl.DataFrame | None:
+        """Parse ``data`` with the typed columns as Float64 (see ``use_typed``), plus
+        ``_line``, ``_malformed`` and ``_suspect`` (rows to read again as text: a typed value
+        is null, which is an empty field or one the reader could not parse; or a field past
+        the header is not empty). None when that is not worth it here: quoted line breaks (a
+        row is then not one line), a row with two or more fields past the header, or many
+        suspect rows.
+
+        Only one spare column is parsed (the reader refuses a row with more fields, and the
+        text parse then takes the block): four cost about a fifth of the parse."""
+        names = self.columns + ["_extra_1"]
+        typed = set(self.typed)
+        schema = {n: (pl.Float64 if n in typed else pl.String) for n in names}
+        try:
+            df = pl.read_csv(data, has_header=False, separator=self.delimiter,
+                             quote_char='"', schema=schema, missing_columns="insert",
+                             truncate_ragged_lines=False, empty_string_is_null=False,
+                             raise_if_empty=False, infer_schema=False, ignore_errors=True)
+        except pl.exceptions.PolarsError:
+            return None                     # the text parse reports it, with the lines
+        physical = n_newlines + (0 if data.endswith(b"\n") else 1)
+        if df.height == 0 or physical != df.height:
+            return None
+        df = df.with_columns(_line=pl.int_range(0, pl.len(), dtype=pl.Int64) + first_line,
+                             _malformed=_extras_filled(df, strip=False),
+                             **{f"_extra_{i + 1}": pl.lit(None, pl.String)
+                                for i in range(1, _N_EXTRA)})
+        df = df.with_columns(_suspect=pl.any_horizontal(
+            [pl.col(c).is_null() for c in self.typed] + [pl.col("_malformed")]))
+        if int(df["_suspect"].sum()) * 20 > df.height:
+            return None                     # more than 5 %: one text parse is cheaper
+        return df
+
+    def chunks(self) -> Iterator[tuple[pl.DataFrame, Callable | None]]:
         first_line = self.next_line
         try:
             for block in self._blocks():
@@ -555,39 +651,14 @@ class _CsvSource(_Source):
                 n_newlines = block.count(b"\n")
                 self.next_line += n_newlines
                 data = self.decode(block, first_line)
-                df = pl.read_csv(data, has_header=False, separator=self.delimiter,
-                                 quote_char='"', schema=schema, missing_columns="insert",
-                                 truncate_ragged_lines=True, empty_string_is_null=False,
-                                 raise_if_empty=False, infer_schema=False)
-                if df.height == 0:
+                del block
+                df = self._typed_frame(data, first_line, n_newlines) if self.typed else None
+                if df is not None:
+                    yield df, _Retext(self, data, first_line)
                     continue
-                physical = n_newlines + (0 if block.endswith(b"\n") else 1)
-                idx = pl.int_range(0, pl.len(), dtype=pl.Int64)
-                if physical == df.height:
-                    line = idx + first_line
-                else:  # quoted fields hold line breaks: count them per row
-                    nl = pl.sum_horizontal([pl.col(c).str.count_matches("\n", literal=True)
-                                            .fill_null(0) for c in names]).cast(pl.Int64)
-                    line = idx + first_line + (nl.cum_sum() - nl)
-                df = df.with_columns(_line=line)
-                # lines holding only blanks or delimiters are not rows
-                maybe = df[names[0]].fill_null("").str.strip_chars() == ""
-                if maybe.any():
-                    blank = pl.all_horizontal([pl.col(c).fill_null("").str.strip_chars() == ""
-                                               for c in names])
-                    df = df.filter(~blank)
-                extras = [f"_extra_{i + 1}" for i in range(_N_EXTRA)]
-                if all(df[e].null_count() == df.height for e in extras):
-                    mal = pl.repeat(False, df.height, dtype=pl.Boolean, eager=True)
-                else:
-                    mal = df.select(pl.any_horizontal([pl.col(e).fill_null("") != ""
-                                                       for e in extras])).to_series()
-                if mal.any():  # fields past the header that hold more than blanks
-                    mal = df.select(pl.any_horizontal([
-                        pl.col(e).fill_null("").str.strip_chars() != "" for e in extras])
-                    ).to_series()
-                df = df.with_columns(mal.alias("_malformed"))
-                yield df
+                df = self._text_frame(data, first_line)
+                if df.height:
+                    yield df, None
         except (OSError, EOFError, zlib.error, gzip.BadGzipFile) as exc:
             raise _Refuse(f"{self.path}: cannot read past line {self.next_line} ({exc})",
                           "The file may be truncated; export it again.") from None
@@ -611,6 +682,44 @@ class _CsvSource(_Source):
 
     def close(self):
         self.bs.close()
+
+
+def _extras_filled(df: pl.DataFrame, strip: bool) -> pl.Series:
+    """Per row: does a field past the header (``_extra_<i>``) hold anything (with
+    ``strip``: anything but blanks)? A file without such fields costs one length check."""
+    extras = [f"_extra_{i + 1}" for i in range(_N_EXTRA) if f"_extra_{i + 1}" in df.columns]
+    if not any(df.select([pl.col(e).str.len_bytes().max() for e in extras]).row(0)):
+        return pl.repeat(False, df.height, dtype=pl.Boolean, eager=True)
+    cols = [pl.col(e).fill_null("") for e in extras]
+    if strip:
+        cols = [c.str.strip_chars() for c in cols]
+    return df.select(pl.any_horizontal([c != "" for c in cols])).to_series()
+
+
+class _Retext:
+    """Text of chosen rows of one typed CSV block (see ``_CsvSource.use_typed``).
+
+    Calling it with line numbers parses those lines again with every column as text, as
+    the text path would have: (frame as ``_CsvSource._text_frame`` gives it). A typed block
+    has no quoted line breaks, so its row ``i`` is its physical line ``i``.
+    """
+
+    def __init__(self, src: _CsvSource, data: bytes, first_line: int):
+        self.src, self.data, self.first_line = src, data, first_line
+
+    def __call__(self, lines: pl.Series) -> pl.DataFrame:
+        import numpy as np
+        buf = np.frombuffer(self.data, dtype=np.uint8)
+        ends = np.flatnonzero(buf == 10) + 1                    # just after each line break
+        if not len(ends) or ends[-1] != len(buf):
+            ends = np.append(ends, len(buf))
+        starts = np.concatenate(([0], ends[:-1]))
+        idx = (lines.to_numpy() - self.first_line).astype(np.int64)
+        d = self.data
+        parts = [d[a:b] if d[b - 1:b] == b"\n" else d[a:b] + b"\n"
+                 for a, b in zip(starts[idx].tolist(), ends[idx].tolist())]
+        return self.src._text_frame(b"".join(parts), self.first_line,
+                                    lines=lines.cast(pl.Int64))
 
 
 class _NdjsonSource(_Source):
@@ -650,7 +759,7 @@ class _NdjsonSource(_Source):
         self.block_bytes = int(max(1 << 12, min(chunk_rows * avg * 1.05, 1 << 30)))
         self.next_line = 1
 
-    def chunks(self) -> Iterator[pl.DataFrame]:
+    def chunks(self) -> Iterator[tuple[pl.DataFrame, None]]:
         carry, eof = self.carry, False
         try:
             while True:
@@ -684,7 +793,7 @@ class _NdjsonSource(_Source):
                         _malformed=root.is_null() | ~pl.col("_json").str.starts_with("{"))
                     cols = [pl.col("_json").str.json_path_match(_json_path(c)).alias(c)
                             for c in self.columns]
-                    yield df.with_columns(cols)
+                    yield df.with_columns(cols), None
                 if eof and not carry:
                     return
         except (OSError, EOFError, zlib.error, gzip.BadGzipFile) as exc:
@@ -726,7 +835,7 @@ class _ParquetSource(_Source):
         self.done_rows = 0
         self.size = path.stat().st_size
 
-    def chunks(self) -> Iterator[pl.DataFrame]:
+    def chunks(self) -> Iterator[tuple[pl.DataFrame, None]]:
         offset = 1
         try:
             for batch in self.pf.iter_batches(batch_size=self.chunk_rows):
@@ -738,7 +847,7 @@ class _ParquetSource(_Source):
                                      _malformed=pl.lit(False))
                 offset += n
                 self.done_rows += n
-                yield df
+                yield df, None
         except (pa.ArrowException, OSError) as exc:
             raise _Refuse(f"{self.path}: cannot read Parquet data after row {offset - 1} "
                           f"({exc})", "The file may be damaged; export it again.") from None
@@ -1188,6 +1297,65 @@ def _raw_json(plan: _Plan, fmt: str) -> pl.Expr:
         .otherwise(plain)
 
 
+def _typed_columns(plan: _Plan) -> list[str]:
+    """Source columns that may be parsed as numbers while reading (telemetry values with a
+    '.' decimal point that no text column shares)."""
+    if plan.kind != "telemetry" or plan.decimal != ".":
+        return []
+    S = plan.sources
+    return sorted({S[c] for c in NUMERIC if c in S} - {S["unit_id"], S["ts"]})
+
+
+def _recheck_as_text(chunk: pl.DataFrame, good: pl.DataFrame, bad: pl.DataFrame,
+                     retext: _Retext, plan: _Plan, settings, fmt: str
+                     ) -> tuple[pl.DataFrame, pl.DataFrame, int]:
+    """A chunk read with typed columns: its rows that failed a check, or whose typed value
+    is null (an empty field, or text the reader could not parse), are read again as text
+    and validated as the text path would (quarantine keeps the raw text; an unparseable
+    number is not_numeric, an empty optional one is fine). (good rows, bad rows, lines that
+    turned out blank, which are not rows)."""
+    suspect = chunk.filter(pl.col("_suspect"))["_line"]
+    if bad.height == 0 and suspect.len() == 0:
+        return good, bad, 0
+    redo = pl.concat([suspect, bad["_line"]]).unique().sort()
+    text = retext(redo)
+    good2, bad2 = _validate(text, plan, settings, fmt)
+    if suspect.len():
+        good = good.filter(~pl.col("_line").is_in(redo.implode()))
+    if good2.height:
+        good = pl.concat([good, good2]).sort("_line")
+    return good, bad2, redo.len() - text.height
+
+
+class _RawRows:
+    """The source rows behind the rows being deduped, to give quarantined rows their raw
+    text: parts of (chunk frame, its ``_Retext`` or None for a frame that is text)."""
+
+    def __init__(self, parts: list[tuple[pl.DataFrame, _Retext | None]]):
+        self.parts = parts
+
+    def __add__(self, other: _RawRows) -> _RawRows:
+        return _RawRows(self.parts + other.parts)
+
+    def since(self, line: int) -> _RawRows:
+        """The rows from line ``line`` on. Parts left without rows are dropped: each holds
+        its whole block of text, and rows are held back chunk after chunk."""
+        parts = [(f.filter(pl.col("_line") >= line), r) for f, r in self.parts]
+        return _RawRows([(f, r) for f, r in parts if f.height])
+
+    def text(self, lines: pl.Series) -> pl.DataFrame:
+        """The rows of these line numbers, every source column as text."""
+        want = lines.implode()
+        out = []
+        for f, r in self.parts:
+            sel = f.filter(pl.col("_line").is_in(want))
+            if sel.height:
+                out.append(sel if r is None else r(sel["_line"]))
+        if not out:
+            raise ValueError("no source rows for these lines")    # cannot happen: a bug
+        return pl.concat(out)
+
+
 # =========================================================================== dedupe
 
 def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
@@ -1198,6 +1366,7 @@ def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
     key columns are streamed batch by batch and semi-joined with the chunk, and values are
     read only for the keys that matched.
     """
+    import pyarrow.dataset as pds
     key, vals = list(KEYS[kind]), list(VALUES[kind])
     empty = pl.DataFrame(schema={"_line": pl.Int64, "_lake_batch": pl.String,
                                  **{f"_lake_{v}": cand.schema[_C + v] for v in vals}})
@@ -1253,66 +1422,95 @@ def _sql_str(v: str) -> str:
     return "'" + str(v).replace("'", "''") + "'"
 
 
-def _split(good: pl.DataFrame, bad: pl.DataFrame, plan: _Plan, lake: Lake,
-           chunk: pl.DataFrame, fmt: str) -> tuple[pl.DataFrame, pl.DataFrame, int]:
-    """Dedupe the good rows: (accepted rows, quarantined rows, duplicate count).
+def _dedupe_in_chunk(good: pl.DataFrame, plan: _Plan
+                     ) -> tuple[pl.DataFrame, list[pl.DataFrame], int]:
+    """Dedupe the good rows of a chunk among themselves: (the first row of every key,
+    conflicting_duplicate rows without their raw text, duplicate count).
 
-    Within the chunk the first row of a key wins; a later row with identical values is a
-    duplicate, with other values a conflicting_duplicate. Then the same against the lake
-    (earlier batches and earlier chunks of this batch).
+    The first row of a key wins; a later row with identical values is a duplicate, with
+    other values a conflicting_duplicate. ``_dedupe_against_lake`` then does the same
+    against the lake (earlier batches and earlier chunks of this batch).
     """
     kind = plan.kind
     key, vals = [_C + k for k in KEYS[kind]], [_C + v for v in VALUES[kind]]
     if good.height == 0:
-        return good, bad, 0
-    dups = 0
-    conflicts: list[pl.DataFrame] = []
+        return good, [], 0
     # distinct key hashes prove distinct keys; only otherwise find the first rows exactly
     if good.select(pl.struct(key).hash().n_unique()).item() == good.height:
-        first = None
-    else:
-        first = good.select(pl.struct(key).is_first_distinct()).to_series()
-    if first is not None and not first.all():
-        later = good.filter(~first)
-        cand = good.filter(first)
-        ref = cand.select(key + [pl.col(v).alias(v + "_ref") for v in vals]
-                          + [pl.col("_line").alias("_first_line")])
-        later = later.join(ref, on=key, how="left")
-        same = pl.all_horizontal([pl.col(v).eq_missing(pl.col(v + "_ref")) for v in vals])
-        later = later.with_columns(_same=same)
-        dups += int(later["_same"].sum())
-        conflicts.append(later.filter(~pl.col("_same")).select(
-            "_line", pl.lit("conflicting_duplicate").alias("_rule"),
-            pl.lit(None, pl.String).alias("_col"),
-            pl.concat_str([pl.lit("same " + ", ".join(KEYS[kind]) + " as line "),
-                           pl.col("_first_line").cast(pl.String),
-                           pl.lit(" of this file, with different values")]).alias("_msg")))
-    else:
-        cand = good
+        return good, [], 0
+    first = good.select(pl.struct(key).is_first_distinct()).to_series()
+    if first.all():
+        return good, [], 0
+    later = good.filter(~first)
+    cand = good.filter(first)
+    ref = cand.select(key + [pl.col(v).alias(v + "_ref") for v in vals]
+                      + [pl.col("_line").alias("_first_line")])
+    later = later.join(ref, on=key, how="left")
+    same = pl.all_horizontal([pl.col(v).eq_missing(pl.col(v + "_ref")) for v in vals])
+    later = later.with_columns(_same=same)
+    dups = int(later["_same"].sum())
+    conflict = later.filter(~pl.col("_same")).select(
+        "_line", pl.lit("conflicting_duplicate").alias("_rule"),
+        pl.lit(None, pl.String).alias("_col"),
+        pl.concat_str([pl.lit("same " + ", ".join(KEYS[kind]) + " as line "),
+                       pl.col("_first_line").cast(pl.String),
+                       pl.lit(" of this file, with different values")]).alias("_msg"))
+    return cand, [conflict], dups
+
+
+def _dedupe_against_lake(cand: pl.DataFrame, plan: _Plan, lake: Lake
+                         ) -> tuple[pl.Series | None, list[pl.DataFrame], int]:
+    """Rows of ``cand`` whose key is already in the lake: (a mask of them in ``cand``'s
+    order, None when there is none; conflicting_duplicate rows without raw text (the lake
+    holds other values); duplicate count (the lake holds the same values))."""
+    kind = plan.kind
     m = _lake_matches(lake, kind, cand)
-    if m.height:
-        cand = cand.join(m, on="_line", how="left")
-        same_lake = pl.all_horizontal([pl.col(_C + v).eq_missing(pl.col(f"_lake_{v}"))
-                                       for v in VALUES[kind]])
-        cand = cand.with_columns(_in_lake=pl.col("_lake_batch").is_not_null(),
-                                 _same_lake=same_lake)
-        dups += int(cand.filter(pl.col("_in_lake") & pl.col("_same_lake")).height)
-        conflicts.append(cand.filter(pl.col("_in_lake") & ~pl.col("_same_lake")).select(
-            "_line", pl.lit("conflicting_duplicate").alias("_rule"),
-            pl.lit(None, pl.String).alias("_col"),
-            pl.concat_str([pl.lit("same " + ", ".join(KEYS[kind]) + " already in the lake "
-                                  "(batch "), pl.col("_lake_batch"),
-                           pl.lit(") with different values; the lake is not overwritten")]
-                          ).alias("_msg")))
-        cand = cand.filter(~pl.col("_in_lake"))
+    if m.height == 0:
+        return None, [], 0
+    hit = cand.join(m, on="_line", how="inner")
+    same_lake = pl.all_horizontal([pl.col(_C + v).eq_missing(pl.col(f"_lake_{v}"))
+                                   for v in VALUES[kind]])
+    hit = hit.with_columns(_same_lake=same_lake)
+    dups = int(hit["_same_lake"].sum())
+    conflict = hit.filter(~pl.col("_same_lake")).select(
+        "_line", pl.lit("conflicting_duplicate").alias("_rule"),
+        pl.lit(None, pl.String).alias("_col"),
+        pl.concat_str([pl.lit("same " + ", ".join(KEYS[kind]) + " already in the lake "
+                              "(batch "), pl.col("_lake_batch"),
+                       pl.lit(") with different values; the lake is not overwritten")]
+                      ).alias("_msg"))
+    return cand["_line"].is_in(m["_line"].implode()), [conflict], dups
+
+
+def _with_conflicts(bad: pl.DataFrame, conflicts: list[pl.DataFrame], plan: _Plan,
+                    raw_rows: _RawRows, fmt: str) -> pl.DataFrame:
+    """``bad`` plus the conflicting duplicates, with their raw text."""
     conflicts = [c for c in conflicts if c.height]
-    if conflicts:
-        conf = pl.concat(conflicts)
-        raw = chunk.filter(pl.col("_line").is_in(conf["_line"].implode())).select(
-            "_line", _raw_json(plan, fmt).alias("_raw"))
-        conf = conf.join(raw, on="_line", how="left")
-        bad = pl.concat([bad, conf.select(bad.columns)])
-    return cand, bad, dups
+    if not conflicts:
+        return bad
+    conf = pl.concat(conflicts)
+    raw = raw_rows.text(conf["_line"]).select("_line", _raw_json(plan, fmt).alias("_raw"))
+    conf = conf.join(raw, on="_line", how="left")
+    return pl.concat([bad, conf.select(bad.columns)])
+
+
+def _sorted_by_key(cand: pl.DataFrame, kind: str) -> pl.DataFrame:
+    """``cand`` in the order the table stores rows (by key; see lake.sort_order). Done
+    here rather than by the writer: polars' gather is about 3x cheaper than arrow's take,
+    and the writer thread is the busiest."""
+    keys = cand.select([pl.col(_C + k).alias(k) for k in KEYS[kind]]).to_arrow()
+    order = sort_order(keys, list(KEYS[kind]))
+    return cand if order is None else cand[pl.from_arrow(order)]
+
+
+def _output(cand: pl.DataFrame, kind: str, batch_id: str, lake: Lake) -> pa.Table:
+    """Rows to append to ``kind``, in ``cand``'s order: canonical columns, batch_id (and
+    day), cast to the contract."""
+    out = cand.select([pl.col(_C + c).alias(c) for c in FIELDS[kind]])
+    out = out.with_columns(batch_id=pl.lit(batch_id))
+    if kind == "telemetry":
+        out = out.with_columns(day=pl.col("ts").dt.date())
+    return lake._prepare(kind, out)
 
 
 # =========================================================================== pipeline
@@ -1445,40 +1643,76 @@ def _done_hashes(lake: Lake) -> set[tuple[str, str]]:
     return set(zip(t["content_sha256"].to_list(), t["kind"].to_list()))
 
 
+class _AlreadyIngested(Exception):
+    """The file's content hash is in the ledger: nothing to do."""
+
+
+class _Hasher:
+    """SHA-256 of a file's bytes, worked out in a thread while the file's first chunk is
+    parsed (a separate pass before it cost about 5 % of the ingest wall time)."""
+
+    def __init__(self, path: Path):
+        self._sha: str | None = None
+        self._error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, args=(path,),
+                                        name="fleetwatch-hash", daemon=True)
+        self._thread.start()
+
+    def _run(self, path: Path) -> None:
+        try:
+            self._sha = _file_sha256(path)
+        except BaseException as exc:  # handed over to result()
+            self._error = exc
+
+    def result(self) -> str:
+        """The hex digest; raises what reading the file raised (OSError)."""
+        self._thread.join()
+        if self._error is not None:
+            raise self._error
+        assert self._sha is not None
+        return self._sha
+
+
 def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | None,
                 done: set, progress: Progress | None) -> FileReport:
     shown = str(path.resolve())
     fr = FileReport(path=shown, kind=kind)
     started = _now()
-    try:
-        fr.content_sha256 = _file_sha256(path)
-    except OSError as exc:
-        fr.status, fr.message = "refused", f"{shown}: cannot read ({exc.strerror or exc})"
-        return fr
-    if (fr.content_sha256, kind) in done:
-        fr.status = "skipped"
-        fr.message = "already ingested (same content hash); nothing to do"
-        return fr
-    fr.batch_id = f"{INGEST_BATCH_PREFIX}{started:%Y%m%dT%H%M%S}-{fr.content_sha256[:12]}-" \
-                  f"{secrets.token_hex(2)}"
+    # Nothing is written before the content hash is known (begin): a file whose content
+    # is in the ledger still leaves the lake untouched, as when it was hashed first.
+    hasher = _Hasher(path)
     src: _Source | None = None
     chunks: _Prefetch | None = None
     writer: _Writer | None = None
     begun = False
+
+    def new_batch_id() -> None:
+        fr.content_sha256 = hasher.result()
+        if (fr.content_sha256, kind) in done:
+            raise _AlreadyIngested
+        fr.batch_id = f"{INGEST_BATCH_PREFIX}{started:%Y%m%dT%H%M%S}-" \
+                      f"{fr.content_sha256[:12]}-{secrets.token_hex(2)}"
+
+    def begin() -> None:
+        nonlocal begun
+        new_batch_id()
+        lake.begin_batch(fr.batch_id)
+        begun = True
+
     try:
         src = _open_source(path, mapping, int(settings.ingest_chunk_rows))
         plan = _make_plan(kind, src, mapping, settings, path)
-        lake.begin_batch(fr.batch_id)
-        begun = True
+        src.use_typed(_typed_columns(plan))
         ingested_at = started
         if progress:
             progress(shown, 0, src.bytes_total)
         writer = _Writer(lake)
         chunks = _Prefetch(src)
-        held: tuple[pl.DataFrame, pl.DataFrame] | None = None    # (good rows, raw rows)
+        held: tuple[pl.DataFrame, _RawRows] | None = None      # (good rows, their source)
         no_bad: pl.DataFrame | None = None
-        deferred: pl.DataFrame | None = None      # accepted rows not yet handed to the writer
-        for chunk, bytes_done in _with_end(chunks):
+        deferred: pa.Table | None = None          # accepted rows not yet handed to the writer
+        for item, bytes_done in _with_end(chunks):
+            chunk = None if item is None else item[0]
             if chunk is None:           # the end: rows held back from the last chunk
                 if held is None:
                     break
@@ -1490,30 +1724,47 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                 if deferred is not None:    # more rows follow: the last chunk's rows can go
                     writer.append(kind, deferred)
                     deferred = None
+                retext = item[1]
                 fr.rows_read += chunk.height
                 good, bad = _validate(chunk, plan, settings, src.fmt)
+                if retext is not None:
+                    good, bad, blank = _recheck_as_text(chunk, good, bad, retext, plan,
+                                                        settings, src.fmt)
+                    fr.rows_read -= blank
                 no_bad = bad.clear()
-                raw = chunk
+                raw = _RawRows([(chunk, retext)])
                 if held is not None:
                     good = pl.concat([held[0], good])
-                    raw = pl.concat([held[1], chunk])
+                    raw = held[1] + raw
                     held = None
                 if kind == "telemetry":
                     good, tail = _hold_tail(good)
                     if tail is not None:
-                        held = (tail, raw.filter(pl.col("_line") >= tail["_line"].min()))
+                        held = (tail, raw.since(tail["_line"].min()))
+            cand, conflicts, dups = _dedupe_in_chunk(good, plan)
+            # the rows to append are sorted and converted while the previous chunk is still
+            # being written (the writer thread is the busiest); after the wait, only the lake
+            # lookup is left, and it rarely finds anything to take out again
+            out = None
+            if cand.height:
+                cand = _sorted_by_key(cand, kind)
+            if not begun:
+                begin()         # the first chunk: waits for the content hash if need be
+            if cand.height:
+                out = _output(cand, kind, fr.batch_id, lake)
             writer.wait()       # earlier chunks are in the lake before dedupe looks there
-            accepted, bad, dups = _split(good, bad, plan, lake, raw, src.fmt)
-            fr.duplicates += dups
-            if accepted.height:
-                out = accepted.select([pl.col(_C + c).alias(c) for c in FIELDS[kind]])
-                out = out.with_columns(batch_id=pl.lit(fr.batch_id))
-                if kind == "telemetry":
-                    out = out.with_columns(day=pl.col("ts").dt.date())
+            in_lake, more, more_dups = _dedupe_against_lake(cand, plan, lake)
+            if in_lake is not None:
+                keep = ~in_lake
+                cand = cand.filter(keep)
+                out = out.filter(keep.to_arrow())
+            bad = _with_conflicts(bad, conflicts + more, plan, raw, src.fmt)
+            fr.duplicates += dups + more_dups
+            if cand.height:
                 # written once the next chunk arrives, or at the end together with the rows
                 # held back (one commit for a file of one chunk)
-                deferred = out if deferred is None else pl.concat([deferred, out])
-                fr.accepted += accepted.height
+                deferred = out if deferred is None else pa.concat_tables([deferred, out])
+                fr.accepted += cand.height
             if bad.height:
                 q = bad.select(
                     pl.lit(fr.batch_id).alias("batch_id"), pl.lit(shown).alias("source_file"),
@@ -1529,7 +1780,9 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                 progress(shown, bytes_done, src.bytes_total)
             # drop this chunk's frames now: the next chunk is parsed while they would still
             # be referenced, and memory is bounded by the chunks alive at once
-            chunk = raw = good = bad = accepted = out = q = None
+            chunk = item = retext = raw = good = bad = cand = out = q = keep = None
+        if not begun:
+            begin()
         if deferred is not None:
             writer.append(kind, deferred)
         writer.wait()
@@ -1550,6 +1803,13 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
         chunks = writer = None
         if begun:
             lake.rollback_batch(fr.batch_id)
+        else:
+            try:
+                new_batch_id()
+            except _AlreadyIngested:
+                return _skipped(fr)
+            except OSError as exc2:
+                return _unreadable(fr, exc2)
         fr.status = "refused"
         fr.rows_read = fr.accepted = fr.quarantined = fr.duplicates = 0
         fr.rules = {}
@@ -1558,11 +1818,36 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
         if begun:
             lake.end_batch(fr.batch_id)
         return fr
+    except _AlreadyIngested:
+        return _skipped(fr)
+    except OSError as exc:
+        if begun:
+            raise
+        try:
+            hasher.result()
+        except OSError as exc2:
+            return _unreadable(fr, exc2)
+        raise
     finally:
         # no write may still be running once we return (or roll back): stop both threads
         _stop(chunks, writer)
         if src is not None:
             src.close()
+
+
+def _skipped(fr: FileReport) -> FileReport:
+    fr.status = "skipped"
+    fr.rows_read = fr.accepted = fr.quarantined = fr.duplicates = 0
+    fr.rules = {}
+    fr.message = "already ingested (same content hash); nothing to do"
+    return fr
+
+
+def _unreadable(fr: FileReport, exc: OSError) -> FileReport:
+    fr.status, fr.message = "refused", f"{fr.path}: cannot read ({exc.strerror or exc})"
+    fr.rows_read = fr.accepted = fr.quarantined = fr.duplicates = 0
+    fr.rules = {}
+    return fr
 
 
 def _with_end(chunks: Iterator) -> Iterator:
@@ -1609,6 +1894,15 @@ def _stop(chunks: _Prefetch | None, writer: _Writer | None) -> None:
         writer.close()
 
 
+def _warm_up() -> None:
+    """Import pyarrow.dataset (the lake lookups need it; it loads pandas: about half a
+    second) in a thread, while the first chunk is read and parsed, instead of in the
+    middle of the pipeline."""
+    if "pyarrow.dataset" not in sys.modules:
+        threading.Thread(target=importlib.import_module, args=("pyarrow.dataset",),
+                         name="fleetwatch-import", daemon=True).start()
+
+
 def ingest_files(paths, settings, mapping: str | os.PathLike | Mapping | None = None,
                  kind: str = "telemetry", progress: Progress | None = None,
                  strict: bool = False) -> IngestReport:
@@ -1634,6 +1928,7 @@ def ingest_files(paths, settings, mapping: str | os.PathLike | Mapping | None = 
                                        message=f"{m}: no such file, folder or matching glob"))
     lake = Lake.from_settings(settings)
     if files:
+        _warm_up()
         with lake.writer("ingest"):
             undone = lake.recover()
             if undone:

@@ -29,14 +29,16 @@ import warnings
 from contextlib import contextmanager
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Any, Iterator
+from typing import TYPE_CHECKING, Any, Iterator
 
-import duckdb
 import polars as pl
 import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.dataset as pds
 import pyarrow.fs as pafs
+
+if TYPE_CHECKING:  # imported where used: an ingest needs neither (about 0.5 s of start-up)
+    import duckdb
+    import pyarrow.dataset as pds
 
 from .errors import LakeError, LockHeldError
 from .schema import TABLES
@@ -289,6 +291,7 @@ class Lake:
 
         The session time zone is UTC, so ``ts::DATE`` is the UTC date.
         """
+        import duckdb
         names = self.table_names() if tables is None else [t for t in tables if self.has_table(t)]
         datasets = self._snapshot(names)
         con = duckdb.connect(":memory:")
@@ -311,6 +314,7 @@ class Lake:
                 return pl.DataFrame()
             sch = {c: known[c] for c in (columns or known)}
             return pl.DataFrame(schema=sch)
+        import duckdb
         con = self.connect([name])
         try:
             cols = ", ".join(_qi(c) for c in columns) if columns else "*"
@@ -632,6 +636,64 @@ class Lake:
                       "version": dt.version()}
         return out
 
+    # ------------------------------------------------------------------ streamed writes
+    # (appended by the analyze work: large derived tables go from DuckDB to Delta without
+    # a whole Arrow copy in Python)
+
+    def write_stream(self, name: str, batches, predicate: str | None = None,
+                     partition_by=None, target_file_size: int | None = None,
+                     max_row_group_size: int | None = None) -> int:
+        """Atomically replace table ``name`` (or, with ``predicate``, its rows matching the
+        Delta SQL predicate) with the rows of ``batches``, one Delta commit, holding about
+        one batch at a time in memory instead of the whole table.
+
+        ``batches``: a ``pyarrow.RecordBatchReader`` (e.g. DuckDB's
+        ``rel.to_arrow_reader(batch_size)``) with exactly the contract's columns of
+        ``name`` in order; each batch is cast to the contract types (strings to
+        large_string, timestamps to UTC microseconds). Unlike ``overwrite`` nothing is
+        sorted: the caller delivers the rows in the order it wants them stored.
+        ``target_file_size`` (bytes) and ``max_row_group_size`` (rows) override delta-rs's
+        defaults (100 MB files, 1 M-row groups): rows stored in time order in files of about
+        a month let a later ``predicate`` on recent days rewrite only the last files.
+        Creates the table when missing. Returns the new version. The caller holds the
+        writer lock.
+        """
+        from deltalake import WriterProperties, write_deltalake
+        if name not in TABLES:
+            raise LakeError(f"write_stream: '{name}' has no contract in schema.py")
+        schema = arrow_schema(name)
+        if list(batches.schema.names) != list(schema.names):
+            raise LakeError(f"table '{name}': streamed columns {batches.schema.names} are not "
+                            f"its contract's {schema.names}",
+                            hint="Select exactly the contract columns, in order.")
+
+        def cast_all():
+            for b in batches:
+                arrays = [_cast_column(pa.chunked_array([b.column(i)]), f.type)
+                          for i, f in enumerate(schema)]
+                yield pa.RecordBatch.from_arrays(
+                    [a.combine_chunks() if isinstance(a, pa.ChunkedArray) else a
+                     for a in arrays], schema=schema)
+
+        reader = pa.RecordBatchReader.from_batches(schema, cast_all())
+        part = self._partition(name, partition_by)
+        path = self._table_path(name)
+        self.path.mkdir(parents=True, exist_ok=True)
+        exists = self.has_table(name)
+        mode = "overwrite" if exists or predicate is None else "append"
+        try:
+            write_deltalake(str(path), reader, mode=mode, partition_by=part,
+                            predicate=predicate if exists else None,
+                            schema_mode="overwrite" if (predicate is None and exists) else None,
+                            target_file_size=target_file_size,
+                            writer_properties=WriterProperties(
+                                compression=_COMPRESSION,
+                                max_row_group_size=max_row_group_size))
+        except Exception as exc:
+            raise LakeError(f"writing table '{name}' in {self.path} failed: {exc}",
+                            hint="Check free disk space and permissions.") from exc
+        return self.version(name)
+
 
 def compact_lake(settings, retention_hours: float | None = None) -> dict:
     """`fleetwatch compact`: take the writer lock, undo killed batches, compact every table.
@@ -693,27 +755,32 @@ def _sort_column(col: pa.ChunkedArray) -> pa.ChunkedArray | pa.Array:
     return pc.take(rank, enc.indices)
 
 
-def _sort_by_key(tbl: pa.Table, key: list[str]) -> pa.Table:
-    """Rows sorted by ``key`` (ascending, nulls last), stable; cheap when already in order.
+def sort_order(tbl: pa.Table, key: list[str]) -> pa.Array | None:
+    """The permutation that sorts ``tbl`` by ``key`` (ascending, nulls and NaN last,
+    stable), or None when the rows are in order already; cheap in the common cases.
 
     Ingest mostly writes rows that arrive sorted by (unit_id, ts), or sorted by ts with the
-    units interleaved (a fleet logger). The first costs one vectorised check and no copy;
-    the second a stable sort on unit_id alone. Anything else gets a full multi-key sort.
-    Arrow's sorts are stable.
+    units interleaved (a fleet logger). The first costs one vectorised check; the second a
+    stable sort on unit_id alone. Anything else gets a full multi-key sort. Arrow's sorts
+    are stable. ``tbl`` needs only the key columns.
     """
     if any(_has_missing(tbl.column(k)) for k in key):
-        order = pc.sort_indices(tbl, sort_keys=[(k, "ascending", "at_end") for k in key])
-        return tbl.take(order)
+        return pc.sort_indices(tbl, sort_keys=[(k, "ascending", "at_end") for k in key])
     if not _out_of_order(tbl, key):
-        # one contiguous batch, as a sort would give: readers then see the file's order
-        return tbl.combine_chunks() if any(c.num_chunks > 1 for c in tbl.columns) else tbl
+        return None
     if len(key) > 1 and not _out_of_order(tbl, key[1:]):
         # the rest of the key is already in order: a stable sort on the first column keeps it
-        order = pc.sort_indices(_sort_column(tbl.column(key[0])))
-    else:
-        keys = pa.table({f"k{i}": _sort_column(tbl.column(k)) for i, k in enumerate(key)})
-        order = pc.sort_indices(keys, sort_keys=[(f"k{i}", "ascending")
-                                                 for i in range(len(key))])
+        return pc.sort_indices(_sort_column(tbl.column(key[0])))
+    keys = pa.table({f"k{i}": _sort_column(tbl.column(k)) for i, k in enumerate(key)})
+    return pc.sort_indices(keys, sort_keys=[(f"k{i}", "ascending") for i in range(len(key))])
+
+
+def _sort_by_key(tbl: pa.Table, key: list[str]) -> pa.Table:
+    """Rows sorted by ``key`` (see ``sort_order``); no copy when already in order."""
+    order = sort_order(tbl.select(key), key)
+    if order is None:
+        # one contiguous batch, as a sort would give: readers then see the file's order
+        return tbl.combine_chunks() if any(c.num_chunks > 1 for c in tbl.columns) else tbl
     return tbl.take(order)
 
 

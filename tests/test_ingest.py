@@ -214,6 +214,49 @@ def test_reingest_is_a_noop_that_says_so(tmp_path):
     assert lake.versions() == before
 
 
+def test_content_hash_while_parsing_writes_nothing_before_it_is_known(tmp_path, monkeypatch):
+    # the hash is worked out in a thread while the first chunk is parsed: a copy of an
+    # ingested file is still skipped without any write, even when the hash comes late
+    import time
+
+    from fleetwatch import ingest as ing
+    path, mapping, _ = _write_messy(tmp_path / "in")
+    settings = _settings(tmp_path, ingest_chunk_rows=5)
+    first = ingest_files([path], settings, mapping=mapping).files[0]
+    lake = Lake.from_settings(settings)
+    before = lake.versions()
+    slow = ing._file_sha256
+
+    def late(p):
+        time.sleep(0.5)
+        return slow(p)
+
+    monkeypatch.setattr(ing, "_file_sha256", late)
+    copy = tmp_path / "in" / "renamed.csv"
+    copy.write_bytes(path.read_bytes())
+    rep = ingest_files([copy], settings, mapping=mapping)
+    f = rep.files[0]
+    assert (f.status, f.rows_read, f.accepted, f.batch_id) == ("skipped", 0, 0, None)
+    assert f.content_sha256 == first.content_sha256
+    assert lake.versions() == before and not lake.pending_batches()
+    # a file that cannot be read is refused with the reason, without a ledger row
+    monkeypatch.setattr(ing, "_file_sha256",
+                        lambda p: (_ for _ in ()).throw(PermissionError(13, "Permission denied")))
+    other = tmp_path / "in" / "other.csv"
+    other.write_text(path.read_text().replace("U1", "U9"))
+    f = ingest_files([other], settings, mapping=mapping).files[0]
+    assert f.status == "refused" and "cannot read (Permission denied)" in f.message
+    assert lake.versions() == before
+    # a file refused before its first chunk gets its hash and batch id on the ledger
+    monkeypatch.setattr(ing, "_file_sha256", slow)
+    (tmp_path / "in" / "bad.toml").write_text(MESSY_MAPPING.replace('"drive"', '"nope"'))
+    f = ingest_files([other], settings, mapping=tmp_path / "in" / "bad.toml").files[0]
+    assert f.status == "refused" and "'nope'" in f.message
+    b = lake.read("batches").filter(pl.col("status") == "refused")
+    assert b["content_sha256"].to_list() == [ing._file_sha256(other)]
+    assert b["batch_id"].to_list() == [f.batch_id] and f.batch_id
+
+
 def test_refused_files_do_not_stop_the_others(tmp_path):
     path, mapping, _ = _write_messy(tmp_path / "in")
     other = tmp_path / "in" / "other.csv"
