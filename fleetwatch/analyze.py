@@ -10,17 +10,25 @@ Incremental by default. A small state file in the lake (``_fleetwatch/analyze_st
 records what the derived tables reflect: telemetry rows per UTC day, each unit's first
 sample, the wear resets and a fingerprint of the analyze settings, the SQL files and
 fits.py. The next run compares the rows per day (cheap: ``day`` is the partition column)
-and recomputes from the Monday on or before the day before the earliest changed day (or
-the unit's previous sample, so a pause that ends in new data is whole; or the start of a
-reference period that the new data falls in, because everything after it leans on that
-reference) up to the end of the data. Whole ISO weeks, so the weekly fits of the
-affected weeks see all their samples. A change of the analyze settings or of the SQL files,
-a missing derived table or ``full=True`` rebuilds everything.
+and recomputes from the day before the earliest changed day (or before the unit's previous
+sample, so a pause that ends in new data is whole; or the start of a reference period that
+the new data falls in, because everything after it leans on that reference) up to the end
+of the data. The weekly fits of that first week still see the whole week: the state keeps
+the per unit-day motor least-squares sums of the last two weeks (they add up), the creep
+fits read the week's earlier windows back from the lake, and a window's motor-model load
+uses the motor constants of an earlier week (fits.motor_constants_for_load), which new data
+does not move. Without the sums, after removed rows, or for a unit with new data and no
+usable motor fit before that week, the run starts on the Monday. Reference fits (creep per
+ratio bin, input-power models) of units whose reference periods are over are kept next to
+the state (``analyze_ref_*.parquet``) and reused. A change of the analyze settings or of the
+SQL files, a missing derived table or ``full=True`` rebuilds everything.
 
-Memory: the work runs in chunks of whole weeks (about ``CHUNK_ROWS`` telemetry rows each)
+Memory: the work runs in chunks of about ``CHUNK_ROWS`` telemetry rows ending on Mondays
 on a DuckDB connection with a memory limit (``DUCKDB_MEMORY_LIMIT``) and a spill folder;
-per-sample data never leaves DuckDB; only window-level rows (steady windows for the creep
-fits) and small aggregates come into Python.
+per-sample data never leaves DuckDB; the large derived tables stream from DuckDB into the
+lake (``Lake.write_stream``) a batch at a time, stored month by month (``MONTH_ORDERED``);
+only window-level rows of a batch of units (for the fits) and small aggregates come into
+Python.
 """
 from __future__ import annotations
 
@@ -37,6 +45,7 @@ from pathlib import Path
 from typing import Any, Callable, Optional
 
 import polars as pl
+import pyarrow as pa
 
 from . import fits, physics
 from .errors import ConfigError, LakeError
@@ -61,13 +70,16 @@ DUCKDB_MEMORY_LIMIT = "2GB"
 #: ... and afterwards, while the fits hold window-level frames in Python and the lake
 #: writes Arrow copies of the derived tables.
 DUCKDB_WRITE_MEMORY_LIMIT = "256MB"
+#: Rows per Arrow batch when a derived table streams from DuckDB to the lake.
+STREAM_BATCH_ROWS = 262_144
 #: Derived tables stored partitioned (``lake.overwrite(..., partition_by=...)``), as
 #: declared in schema.TABLES; a change changes the fingerprint (one full rebuild). windows
 #: and efficiency are NOT partitioned by day, although an incremental run would then swap
 #: whole daily folders instead of rewriting the two tables: a year of daily files made the
 #: dashboard's Fleet page first render 3.8 s instead of 2.1 s and its Unit page 3.0 s
-#: instead of 2.2 s (24 units x 365 days, idle machine, 2026-12-02), a cost paid by people,
-#: where the rewrite costs the scheduled job seconds.
+#: instead of 2.2 s (24 units x 365 days, idle machine, 2026-12-02), a cost paid by people.
+#: They are stored month by month instead (MONTH_ORDERED), so an incremental run rewrites
+#: only the files of the last month.
 PARTITIONED = {name: list(TABLES[name].partition_by) for name in DERIVED
                if TABLES[name].partition_by}
 #: State file inside the lake folder.
@@ -127,6 +139,14 @@ class AnalysisPlan:
     resets: list[list[str]]
     fingerprint: str
     chunks: list[tuple[dt.date, dt.date]] = field(default_factory=list)
+    #: per unit-day motor sums (motor_sums.sql rows) kept in the state: those of the days
+    #: before from_day that the week of from_day needs come in, the state's next ones go out
+    motor_day_sums: dict = field(default_factory=dict)
+    #: per unit, the first week with a usable motor fit (ISO dates), kept in the state
+    motor_first_usable: dict[str, str] = field(default_factory=dict)
+    #: reference fits of the last run ({"segments": {unit: key}, "bins": frame, "power":
+    #: frame}; files next to the state) for units whose reference periods are over
+    ref_cache: dict = field(default_factory=dict)
 
     @property
     def empty(self) -> bool:
@@ -285,20 +305,56 @@ def plan_analysis(con, settings: Any, state: dict | None, full: bool,
         return AnalysisPlan(False, None, None, "no new telemetry or maintenance since the "
                             "last analyze", day_counts, first, resets, fp)
     start = min(starts).astimezone(UTC).date() - dt.timedelta(days=1)
-    from_day = max(_monday(start), _monday(first_day))
+    new_units = [r[0] for r in rows] if changed else []
+    sums = state.get("motor_day_sums") or {}
+    # rows removed from a day: the units they came from are not known here, so no unit can
+    # be shown to keep its week's own motor fit (see _midweek_ok): whole weeks then
+    removed = any(day_counts.get(d, 0) < old_counts.get(d, 0) for d in changed)
+    if start > _monday(first_day) and not removed and \
+            _midweek_ok(state, start, day_counts, new_units):
+        from_day = start
+    else:
+        from_day = max(_monday(start), _monday(first_day))
     what = f"{len(changed)} day(s) with new or changed telemetry" if changed else \
         "wear resets changed"
     return AnalysisPlan(False, from_day, end_day, what + " since the last analyze",
-                        day_counts, first, resets, fp)
+                        day_counts, first, resets, fp, motor_day_sums=sums,
+                        motor_first_usable=dict(state.get("motor_first_usable") or {}))
+
+
+def _midweek_ok(state: dict, start: dt.date, day_counts: dict[dt.date, int],
+                new_units: list[str]) -> bool:
+    """Can a run start at ``start`` rather than at its Monday?
+
+    The days of the week before ``start`` keep their derived rows; the week's weekly fits
+    still see them through the state's per unit-day motor sums (needed for every such day
+    with telemetry) and the stored windows (creep). Their windows' load used the motor
+    constants of an earlier week (fits.motor_constants_for_load), which the new data does
+    not change, except for a unit without a usable fit before this week: it uses the week's
+    own fit, so new data of such a unit needs the whole week again.
+    """
+    if start.weekday() == 0:
+        return True
+    monday = _monday(start)
+    covered = set((state.get("motor_day_sums") or {}).get("days", []))
+    for i in range((start - monday).days):
+        d = monday + dt.timedelta(days=i)
+        if day_counts.get(d, 0) > 0 and d.isoformat() not in covered:
+            return False
+    first_usable = state.get("motor_first_usable") or {}
+    return all(u in first_usable and first_usable[u] < monday.isoformat() for u in new_units)
 
 
 def _chunks(plan: AnalysisPlan) -> list[tuple[dt.date, dt.date]]:
-    """Consecutive whole-week chunks of about CHUNK_ROWS telemetry rows."""
+    """Consecutive chunks of about CHUNK_ROWS telemetry rows that end on a Monday (the first
+    starts at from_day, which may lie inside a week)."""
     per_week: dict[dt.date, int] = {}
     for d, n in plan.day_counts.items():
-        per_week[_monday(d)] = per_week.get(_monday(d), 0) + n
+        if d >= plan.from_day:
+            per_week[_monday(d)] = per_week.get(_monday(d), 0) + n
     out: list[tuple[dt.date, dt.date]] = []
-    a = wk = plan.from_day
+    a = plan.from_day
+    wk = _monday(a)
     rows = 0
     while wk < plan.to_day:
         rows += per_week.get(wk, 0)
@@ -311,12 +367,24 @@ def _chunks(plan: AnalysisPlan) -> list[tuple[dt.date, dt.date]]:
 
 
 # ---------------------------------------------------------------- the work
+#: Large derived tables stored month by month: rows ordered by (UTC month of ``day``, key)
+#: in files of about STREAM_FILE_BYTES, so an incremental run's replacement of its recent
+#: days rewrites the last month's file(s) instead of the whole table (a table sorted by
+#: unit alone has every day in every file). Within a month the rows stay in key order and
+#: row groups of STREAM_ROW_GROUP rows keep a unit's rows together for readers that filter
+#: on unit_id (a unit's year is then about 12 row groups).
+MONTH_ORDERED = ("windows", "efficiency")
+STREAM_FILE_BYTES = 32 * 1024 * 1024
+STREAM_ROW_GROUP = 131_072
+
+
 def _schema_select(name: str, source: str, where: str = "") -> str:
     """SELECT of exactly the contract columns of table ``name`` with their types, in the
-    order of the table's key (the lake's write then finds the rows sorted and keeps them
-    as they are instead of sorting a copy)."""
+    order of the table's key (MONTH_ORDERED tables: month first)."""
     cols = ", ".join(f"CAST({c.name} AS {c.type}) AS {c.name}" for c in TABLES[name].columns)
     order = ", ".join(TABLES[name].key)
+    if name in MONTH_ORDERED:
+        order = "date_trunc('month', day), " + order
     return f"SELECT {cols} FROM {source} {where} ORDER BY {order}"
 
 
@@ -332,7 +400,8 @@ def run_analysis(con, settings: Any, plan: AnalysisPlan,
     ``prev``: connection with the previous ``windows``, ``events``, ``motor_fits`` and
     ``creep_fits`` (needed for an incremental plan: reference windows, old flatlines and the
     weeks before the range).
-    ``write(name, arrow_table, from_day)`` stores one table: ``from_day`` None means replace
+    ``write(name, data, from_day)`` stores one table: ``data`` is a pyarrow Table or a
+    RecordBatchReader (large tables stream from DuckDB); ``from_day`` None means replace
     the whole table, else replace its rows with ``day >= from_day``. Returns rows written
     per table.
     """
@@ -351,11 +420,11 @@ def run_analysis(con, settings: Any, plan: AnalysisPlan,
         shutil.rmtree(tmp, ignore_errors=True)
 
 
-def _release_memory() -> None:
-    """Hand freed Python and Arrow memory back before a large allocation."""
-    import pyarrow as pa
-
-    gc.collect()
+def _release_memory(collect: bool = True) -> None:
+    """Hand freed Python and Arrow memory back before a large allocation (``collect``: run
+    the garbage collector too; it costs a few tenths of a second each time)."""
+    if collect:
+        gc.collect()
     pa.default_memory_pool().release_unused()
 
 
@@ -377,11 +446,13 @@ def _unit_batches(per_unit: dict[str, int], budget: int) -> list[list[str]]:
 
 
 def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime,
-                   ref_days: tuple[dt.date, dt.date] | None = None
+                   ref_days: tuple[dt.date, dt.date] | None = None,
+                   ref_units: list[str] | None = None
                    ) -> tuple[pl.DataFrame, pl.DataFrame]:
-    """Steady windows of ``units``: those just computed, and those plus the older windows of
-    the units' reference periods (from the lake, for an incremental run; ``ref_days``: the
-    first and last UTC day any reference period touches)."""
+    """Steady windows of ``units``: those just computed, and for ``ref_units`` (default: all)
+    those plus the older windows of the units' reference periods (from the lake, for an
+    incremental run; ``ref_days``: the first and last UTC day any reference period
+    touches)."""
     cols = ", ".join(_WCOLS)
     con.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
     win_new = pl.from_arrow(con.sql(
@@ -390,8 +461,12 @@ def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime,
     con.unregister("_units")
     win_new = win_new.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
                                    .dt.cast_time_unit("us"))
-    if prev is None:
-        return win_new, win_new
+    ref_new = win_new
+    if ref_units is not None:
+        ref_new = win_new.filter(pl.col("unit_id").is_in(ref_units))
+        units = ref_units
+    if prev is None or not units:
+        return win_new, ref_new
     lo, hi = ref_days or (dt.date(1970, 1, 1), dt.date(9999, 12, 31))
     prev.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
     old = pl.from_arrow(prev.sql(
@@ -408,7 +483,83 @@ def _batch_windows(con, prev, units: list[str], from_ts: dt.datetime,
     prev.unregister("_units")
     old = old.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
                            .dt.cast_time_unit("us"))
-    return win_new, pl.concat([old.cast(win_new.schema), win_new])
+    return win_new, pl.concat([old.cast(win_new.schema), ref_new])
+
+
+_SUM_COLS = ("n", "n_temp", "s_ii", "s_iw", "s_ww", "s_vi", "s_vw", "s_vv")
+_SUM_SCHEMA = {"unit_id": pl.String, "week_start": pl.Date, "day": pl.Date,
+               **{c: (pl.Int64 if c.startswith("n") else pl.Float64) for c in _SUM_COLS}}
+
+
+def _sums_from_state(saved: dict) -> pl.DataFrame:
+    """The state's per unit-day motor sums as a frame (rows: unit_id, day, n, n_temp, s_*)."""
+    rows = (saved or {}).get("rows") or []
+    if not rows:
+        return pl.DataFrame(schema=_SUM_SCHEMA)
+    df = pl.DataFrame(rows, schema=["unit_id", "day", *_SUM_COLS], orient="row")
+    df = df.with_columns(pl.col("day").str.to_date())
+    return df.with_columns(week_start=pl.col("day").dt.truncate("1w")).select(
+        list(_SUM_SCHEMA)).cast(_SUM_SCHEMA)
+
+
+def _sums_for_state(sums: pl.DataFrame, days: list[str]) -> dict:
+    return {"days": sorted(set(days)),
+            "rows": [[r[0], r[1].isoformat(), *r[2:]] for r in
+                     sums.sort("unit_id", "day").select("unit_id", "day", *_SUM_COLS).rows()]}
+
+
+def _head_windows(prev, units: list[str], monday: dt.date, from_day: dt.date) -> pl.DataFrame:
+    """Stored steady windows of ``units`` in [monday, from_day): the days of the first week
+    that an incremental run does not recompute (its weekly creep fits need them)."""
+    cols = ", ".join(_WCOLS)
+    prev.register("_units", pl.DataFrame({"unit_id": units}).to_arrow())
+    old = pl.from_arrow(prev.sql(
+        f"SELECT {cols} FROM windows WHERE steady_samples >= 2 AND day >= $a AND day < $b "
+        "AND unit_id IN (SELECT unit_id FROM _units)",
+        params={"a": monday, "b": from_day}).to_arrow_table())
+    prev.unregister("_units")
+    return old.with_columns(pl.col("window_start").dt.convert_time_zone("UTC")
+                            .dt.cast_time_unit("us"))
+
+
+def _seg_key(segments: pl.DataFrame) -> dict[str, str]:
+    """Per unit, its maintenance segments and reference periods as one comparable string."""
+    if segments.height == 0:
+        return {}
+    g = (segments.sort("unit_id", "seg_start")
+         .with_columns(k=pl.concat_str([pl.col(c).dt.timestamp("us").cast(pl.String) for c in
+                                        ("seg_start", "ref_start", "ref_end")],
+                                       separator="/"))
+         .group_by("unit_id", maintain_order=True).agg(pl.col("k").str.join(";")))
+    return dict(zip(g["unit_id"].to_list(), g["k"].to_list()))
+
+
+def _ref_cache_valid(cache: dict, segments: pl.DataFrame, from_ts: dt.datetime
+                     ) -> dict[str, str]:
+    """Units whose cached reference fits still hold: the same segments as when cached and
+    every reference period over before ``from_ts`` (so none of its windows is recomputed)."""
+    if not cache or not cache.get("segments"):
+        return {}
+    done = segments.group_by("unit_id").agg(pl.col("ref_end").max())
+    over = set(done.filter(pl.col("ref_end") <= from_ts)["unit_id"].to_list())
+    now = _seg_key(segments)
+    return {u: k for u, k in cache["segments"].items()
+            if u in over and now.get(u) == k}
+
+
+def _ref_cache_new(bins: pl.DataFrame, pm: pl.DataFrame, segments: pl.DataFrame,
+                   old: dict, units: set[str]) -> dict:
+    """The reference fits to keep for the next run: this run's, and the old cache's for the
+    units this run did not see."""
+    keep_old = [u for u in (old.get("segments") or {}) if u not in units]
+    if keep_old:
+        bins = pl.concat([bins, old["bins"].filter(pl.col("unit_id").is_in(keep_old))
+                          .cast(bins.schema)])
+        pm = pl.concat([pm, old["power"].filter(pl.col("unit_id").is_in(keep_old))
+                        .cast(pm.schema)])
+    seg = _seg_key(segments)
+    kept = {u: seg[u] for u in set(units) | set(keep_old) if u in seg}
+    return {"segments": kept, "bins": bins, "power": pm}
 
 
 def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
@@ -430,6 +581,7 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
             progress(step, total)
 
     full = plan.full
+    monday0 = _monday(plan.from_day)
     first_ts = pl.DataFrame({"unit_id": list(plan.first_ts),
                              "first_ts": list(plan.first_ts.values())},
                             schema={"unit_id": pl.String, "first_ts": pl.Datetime("us", "UTC")})
@@ -443,26 +595,60 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     old_motor = None
     if not full and prev is not None and _has_view(prev, "motor_fits"):
         old_motor = pl.from_arrow(prev.sql("SELECT * FROM motor_fits").to_arrow_table())
+    # motor fits of the weeks before this run (their constants give the first weeks' load)
+    # and the state's day sums of the first week's days before from_day
+    earlier = None
+    if old_motor is not None:
+        earlier = old_motor.filter(pl.col("week_start") < monday0).select(
+            "unit_id", "week_start", "n", "r_ohm", "k_e").cast(
+            {"n": pl.Int64, "r_ohm": pl.Float64, "k_e": pl.Float64})
+    old_sums = pl.DataFrame(schema=_SUM_SCHEMA) if full else \
+        _sums_from_state(plan.motor_day_sums)
+    head_sums = old_sums.filter((pl.col("day") >= monday0) & (pl.col("day") < plan.from_day))
 
     ctx = _context_s(settings)
     motor_weeks: list[pl.DataFrame] = []
+    day_sums: list[pl.DataFrame] = []
+    sum_cols = ", ".join(_SUM_SCHEMA)
     for k, (a, b) in enumerate(chunks):
         rt = {"from_ts": _ts(a), "to_ts": _ts(b), "context_s": ctx,
               "alpha_per_k": physics.ALPHA_COPPER_PER_K}
         run_model(con, models["samples"], settings, rt)
         run_model(con, models["motor_sums"], settings, rt)
-        sums = pl.from_arrow(con.sql("SELECT * FROM motor_sums").to_arrow_table())
-        week_fits = fits.solve_motor_sums(sums)
-        motor_weeks.append(week_fits.select("unit_id", "week_start", "n", "r_ohm", "k_e",
-                                            "resid_std_v"))
-        mc = fits.motor_constants_for_load(week_fits, old_motor, settings["motor_i0_a"])
+        sums = pl.from_arrow(con.sql(f"SELECT {sum_cols} FROM motor_sums").to_arrow_table()
+                             ).cast(_SUM_SCHEMA)
+        day_sums.append(sums)
+        if k == 0 and head_sums.height:
+            sums = pl.concat([head_sums, sums])
+        week_fits = fits.solve_motor_sums(fits.motor_week_sums(sums))
+        week_fits = week_fits.select("unit_id", "week_start", "n", "r_ohm", "k_e",
+                                     "resid_std_v")
+        motor_weeks.append(week_fits)
+        mc = fits.motor_constants_for_load(week_fits, earlier, settings["motor_i0_a"])
+        new_fits = week_fits.select("unit_id", "week_start", "n", "r_ohm", "k_e")
+        earlier = new_fits if earlier is None else pl.concat([earlier, new_fits])
         con.register("motor_constants", mc.to_arrow())
         first = k == 0
         for name in ("windows", "window_power", "events", "day_stats"):
             run_model(con, models[name], settings, rt, replace=first)
         con.execute("DROP TABLE samples")
         con.execute("DROP TABLE motor_sums")
+        con.unregister("motor_constants")
         tick()
+
+    # the day sums the next run may need: the days from the Monday a week before the last
+    # day's (a run that starts inside a week adds them up with its new days)
+    last_day = max(plan.day_counts)
+    keep_from = _monday(last_day) - dt.timedelta(days=7)
+    kept = [d for d in (plan.motor_day_sums or {}).get("days", [])
+            if keep_from.isoformat() <= d < plan.from_day.isoformat()] if not full else []
+    kept += [(plan.from_day + dt.timedelta(days=i)).isoformat()
+             for i in range((last_day - plan.from_day).days + 1)
+             if plan.from_day + dt.timedelta(days=i) >= keep_from]
+    all_sums = pl.concat([old_sums.filter(pl.col("day") < plan.from_day), *day_sums])
+    plan.motor_day_sums = _sums_for_state(
+        all_sums.filter(pl.col("day") >= keep_from), kept)
+    del all_sums, day_sums, old_sums
 
     # the per-sample work is done: DuckDB keeps (or spills) only window-level tables now
     con.execute(f"SET memory_limit = '{DUCKDB_WRITE_MEMORY_LIMIT}'")
@@ -471,33 +657,30 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     written: dict[str, int] = {}
 
     def store(name: str, where: str = "") -> None:
-        """Hand table ``name`` (exactly its contract columns) to ``write``: one commit."""
+        """Stream table ``name`` (exactly its contract columns, in key order) from DuckDB
+        to ``write``: one commit, about one batch in Python at a time."""
         params = {"from_day": plan.from_day} if where else None
-        tbl = con.sql(_schema_select(name, name, where), params=params).to_arrow_table()
-        written[name] = write(name, tbl, from_day)
-        del tbl
-        _release_memory()
+        reader = con.sql(_schema_select(name, name, where), params=params
+                         ).to_arrow_reader(STREAM_BATCH_ROWS)
+        written[name] = write(name, reader, from_day)
+        del reader
+        _release_memory(collect=full)
 
-    # windows and events are final now: write them while Python holds little else (the
-    # lake's write needs about 1.5 times the table on top of it). The windows move out of
-    # DuckDB into one Arrow table that is both written and, as a view, read by the fits.
-    win_tbl = con.sql(_schema_select("windows", "windows")).to_arrow_table()
-    con.execute("DROP TABLE windows")
-    con.register("windows", win_tbl)
-    _release_memory()
-    written["windows"] = write("windows", win_tbl, from_day)
-    _release_memory()
+    # windows and events are final now; windows stays in DuckDB (spilled as needed), where
+    # the fits below read it a batch of units at a time
+    store("windows")
     store("events", "" if full else "WHERE day >= $from_day")
 
     # -- motor fits: the new weeks, the untouched old weeks, drift against the reference
-    new_motor = (pl.concat(motor_weeks) if motor_weeks else
-                 pl.DataFrame(schema={"unit_id": pl.String, "week_start": pl.Date,
-                                      "n": pl.Int64, "r_ohm": pl.Float64, "k_e": pl.Float64,
-                                      "resid_std_v": pl.Float64}))
+    new_motor = pl.concat(motor_weeks) if motor_weeks else pl.DataFrame(schema={
+        "unit_id": pl.String, "week_start": pl.Date, "n": pl.Int64, "r_ohm": pl.Float64,
+        "k_e": pl.Float64, "resid_std_v": pl.Float64})
     if old_motor is not None and old_motor.height:
-        keep = old_motor.filter(pl.col("week_start") < plan.from_day).select(
+        keep = old_motor.filter(pl.col("week_start") < monday0).select(
             new_motor.columns).cast(new_motor.schema)
         new_motor = pl.concat([keep, new_motor])
+    plan.motor_first_usable = {u: d.isoformat()
+                               for u, d in fits.first_usable_week(new_motor).items()}
     motor_table = fits.motor_fits_with_drift(new_motor, first_ts, int(settings["reference_days"]))
     tick()
 
@@ -509,6 +692,7 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
             "d": plan.from_day}).to_arrow_table())
         flat = pl.concat([old_flat.cast(flat.schema), flat])
     old_windows = not full and prev is not None and _has_view(prev, "windows")
+    head = old_windows and plan.from_day > monday0
     ref_days = None
     if old_windows:
         prev.register("_ref_periods", segments.select("unit_id", "ref_start", "ref_end")
@@ -518,29 +702,54 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
                         segments["ref_end"].max().date() + dt.timedelta(days=1))
     per_unit = dict(con.execute("SELECT unit_id, count(*) FROM windows "
                                 "WHERE steady_samples >= 2 GROUP BY unit_id").fetchall())
-    creep_parts, daily_parts, pm_parts = [], [], []
+    # reference fits (ratio-bin creep lines, power models) of units whose reference periods
+    # all ended before this run come from the last run: their reference windows are as then
+    cache = _ref_cache_valid(plan.ref_cache, segments, from_ts) if old_windows else {}
+    bins_cached = plan.ref_cache.get("bins") if cache else None
+    pm_cached = plan.ref_cache.get("power") if cache else None
+    creep_parts, daily_parts, pm_parts, bin_parts = [], [], [], []
     for units in _unit_batches(per_unit, FIT_BATCH_WINDOWS):
+        ref_units = [u for u in units if u not in cache]
         win_new, ref_windows = _batch_windows(con, prev if old_windows else None, units,
-                                              from_ts, ref_days)
+                                              from_ts, ref_days, ref_units)
         fl = flat.filter(pl.col("unit_id").is_in(units))
         cw_new = fits.drop_flatlined(fits.creep_windows(win_new, settings), fl,
                                      settings["window_min"])
-        creep_parts.append(fits.creep_fits_weekly(cw_new, segments))
+        cw_week = cw_new
+        if head:
+            # the week's days before from_day, from the lake: the weekly fit sees them all
+            old_head = _head_windows(prev, units, monday0, plan.from_day)
+            cw_week = fits.drop_flatlined(fits.creep_windows(
+                pl.concat([old_head.cast(win_new.schema), win_new]), settings), fl,
+                settings["window_min"])
+        creep_parts.append(fits.creep_fits_weekly(cw_week, segments))
         ref_bins = fits.creep_reference_bins(
             fits.drop_flatlined(fits.creep_windows(ref_windows, settings), fl,
                                 settings["window_min"]), segments)
+        pm_b = fits.power_models(ref_windows, segments)
+        done = [u for u in units if u in cache]
+        if done:
+            ref_bins = pl.concat([ref_bins, bins_cached.filter(
+                pl.col("unit_id").is_in(done)).cast(ref_bins.schema)])
+            pm_b = pl.concat([pm_b, pm_cached.filter(
+                pl.col("unit_id").is_in(done)).cast(pm_b.schema)])
         daily_parts.append(fits.creep_daily(cw_new, segments, ref_bins,
                                             settings["load_ref_nm"]))
-        pm_parts.append(fits.power_models(ref_windows, segments))
-        del win_new, ref_windows, cw_new
+        pm_parts.append(pm_b)
+        bin_parts.append(ref_bins)
+        del win_new, ref_windows, cw_new, cw_week
     creep_new = pl.concat(creep_parts) if creep_parts else fits.creep_fits_weekly(
         pl.DataFrame(), segments)
     daily = pl.concat(daily_parts) if daily_parts else fits.creep_daily(
         pl.DataFrame(), segments, pl.DataFrame(), 1.0)
     pm = pl.concat(pm_parts) if pm_parts else fits.power_models(pl.DataFrame(), segments)
+    plan.ref_cache = _ref_cache_new(
+        pl.concat(bin_parts) if bin_parts else fits.creep_reference_bins(pl.DataFrame(),
+                                                                         segments),
+        pm, segments, plan.ref_cache if cache else {}, set(per_unit))
     if not full and prev is not None and _has_view(prev, "creep_fits"):
         old = pl.from_arrow(prev.sql("SELECT * FROM creep_fits "
-                                    "WHERE week_start < $f", params={"f": plan.from_day}
+                                    "WHERE week_start < $f", params={"f": monday0}
                                     ).to_arrow_table())
         creep_table = pl.concat([old.select(creep_new.columns).cast(creep_new.schema),
                                  creep_new])
@@ -556,12 +765,10 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     tick()
 
     # -- write the rest (each table one atomic commit)
-    for view in ("motor_constants", "creep_daily", "power_models"):
+    for view in ("creep_daily", "power_models"):
         con.unregister(view)
     del flat, daily
-    con.unregister("windows")
-    del win_tbl
-    for name in ("window_power", "events", "day_stats"):
+    for name in ("windows", "window_power", "events", "day_stats"):
         con.execute(f"DROP TABLE {name}")
     store("efficiency")
     store("unit_days")
@@ -595,16 +802,49 @@ def state_after(plan: AnalysisPlan) -> dict:
         "first_ts": {u: t.isoformat() for u, t in sorted(plan.first_ts.items())},
         "resets": plan.resets,
         "from_day": plan.from_day.isoformat() if plan.from_day else None,
+        "motor_day_sums": plan.motor_day_sums,
+        "motor_first_usable": plan.motor_first_usable,
         "finished_at": dt.datetime.now(UTC).isoformat(),
     }
 
 
+_REF_FILES = ("bins", "power")
+
+
 def _write_state(lake, plan: AnalysisPlan) -> None:
+    """Write the state file (the commit point of the run's bookkeeping) and the reference
+    fits it names (parquet files with a fresh token, so an older state never names them)."""
     p = _state_path(lake)
     p.parent.mkdir(parents=True, exist_ok=True)
+    state = state_after(plan)
+    cache = plan.ref_cache or {}
+    token = None
+    if cache.get("segments"):
+        token = os.urandom(6).hex()
+        for kind in _REF_FILES:
+            cache[kind].write_parquet(p.parent / f"analyze_ref_{kind}_{token}.parquet")
+        state["ref_cache"] = {"token": token, "segments": cache["segments"]}
     tmp = p.with_name(p.name + ".tmp")
-    tmp.write_text(json.dumps(state_after(plan), indent=1), encoding="utf-8")
+    tmp.write_text(json.dumps(state, indent=1), encoding="utf-8")
     os.replace(tmp, p)
+    for f in p.parent.glob("analyze_ref_*.parquet"):
+        if token is None or not f.name.endswith(f"_{token}.parquet"):
+            f.unlink(missing_ok=True)
+
+
+def _read_ref_cache(lake, state: dict | None) -> dict:
+    """The reference fits the state names ({} when missing or unreadable)."""
+    info = (state or {}).get("ref_cache") or {}
+    if not info.get("token"):
+        return {}
+    out = {"segments": dict(info.get("segments") or {})}
+    try:
+        for kind in _REF_FILES:
+            out[kind] = pl.read_parquet(_state_path(lake).parent /
+                                        f"analyze_ref_{kind}_{info['token']}.parquet")
+    except (OSError, pl.exceptions.PolarsError):
+        return {}
+    return out
 
 
 def _run_health(lake, settings, full: bool = False) -> str:
@@ -649,12 +889,30 @@ def analyze(settings: Any, full: bool = False,
         prev = lake.connect(["windows", "events", "motor_fits", "creep_fits"])
         try:
             have = all(lake.has_table(t) for t in DERIVED)
-            plan = plan_analysis(con, settings, _read_state(lake), full, have,
+            state = _read_state(lake)
+            plan = plan_analysis(con, settings, state, full, have,
                                  lake.rows_per_partition("telemetry", "day"))
+            if not plan.full:
+                plan.ref_cache = _read_ref_cache(lake, state)
             report.full, report.reason = plan.full, plan.reason
             if not plan.empty:
                 def write(name: str, data: Any, from_day: Optional[dt.date]) -> int:
                     part = PARTITIONED.get(name)
+                    if isinstance(data, pa.RecordBatchReader):
+                        rows = [0]
+
+                        def counted():
+                            for b in data:
+                                rows[0] += b.num_rows
+                                yield b
+                        sized = {"target_file_size": STREAM_FILE_BYTES,
+                                 "max_row_group_size": STREAM_ROW_GROUP} \
+                            if name in MONTH_ORDERED else {}
+                        lake.write_stream(
+                            name, pa.RecordBatchReader.from_batches(data.schema, counted()),
+                            None if from_day is None else f"day >= '{from_day.isoformat()}'",
+                            partition_by=part, **sized)
+                        return rows[0]
                     if from_day is None:
                         lake.overwrite(name, data, partition_by=part)
                     else:

@@ -1,8 +1,10 @@
 """Per-unit fits behind the derived tables, vectorised over groups (no per-row loops).
 
 - Motor constants per unit and ISO week from the sufficient statistics of
-  ``v_in = R*i_in + k_e*omega_in`` (``sql/motor_sums.sql``; domain.md 1.4), with drift
-  against the unit's reference weeks -> table ``motor_fits``.
+  ``v_in = R*i_in + k_e*omega_in`` (``sql/motor_sums.sql``, per unit-day, summed per week;
+  domain.md 1.4), with drift against the unit's reference weeks -> table ``motor_fits``;
+  the load estimate of a week uses the latest usable fit of an earlier week
+  (``motor_constants_for_load``).
 - Creep versus load (slip = a + b*load, Theil-Sen, domain.md 3.6) per unit, ISO week and
   ratio bin -> table ``creep_fits``; the same per unit and day after removing each ratio
   bin's reference offset and compliance -> ``creep_a``, ``creep_b``, ``slip_at_load`` of
@@ -31,7 +33,8 @@ from scipy.stats import norm
 
 
 __all__ = ["theil_sen_grouped", "solve_motor_sums", "motor_fits_with_drift",
-           "motor_constants_for_load", "unit_segments", "assign_segments", "creep_windows",
+           "motor_week_sums", "motor_constants_for_load", "first_usable_week",
+           "unit_segments", "assign_segments", "creep_windows",
            "creep_fits_weekly", "creep_reference_bins", "creep_daily", "power_models",
            "predict_power", "drop_flatlined", "ratio_bin", "MIN_MOTOR_SAMPLES",
            "MIN_CREEP_WINDOWS", "MIN_POWER_WINDOWS", "CREEP_MAX_POINTS", "FAR_FUTURE"]
@@ -246,34 +249,66 @@ def motor_fits_with_drift(fits: pl.DataFrame, first_ts: pl.DataFrame,
                                                                           "week_start")
 
 
-def motor_constants_for_load(fits: pl.DataFrame, fallback: pl.DataFrame | None,
+def motor_week_sums(day_sums: pl.DataFrame) -> pl.DataFrame:
+    """Sum the per unit-day rows of ``motor_sums.sql`` into one row per unit and ISO week.
+
+    The least-squares sums are additive, so the weekly fit over the sum of a week's day rows
+    equals the fit over all its steady samples. Rows are added in (unit_id, week_start, day)
+    order, so the same day rows give the same weekly sums bit for bit whichever run (full or
+    incremental) brings them together.
+    """
+    cols = ["n", "n_temp", "s_ii", "s_iw", "s_ww", "s_vi", "s_vw", "s_vv"]
+    if day_sums.height == 0:
+        return pl.DataFrame(schema={"unit_id": pl.String, "week_start": pl.Date,
+                                    **{c: (pl.Int64 if c.startswith("n") else pl.Float64)
+                                       for c in cols}})
+    return (day_sums.sort("unit_id", "week_start", "day")
+            .group_by("unit_id", "week_start", maintain_order=True)
+            .agg([pl.col(c).sum() for c in cols])
+            .with_columns(pl.col("n", "n_temp").cast(pl.Int64)))
+
+
+def motor_constants_for_load(fits: pl.DataFrame, earlier: pl.DataFrame | None,
                              i0_a: float) -> pl.DataFrame:
     """The ``motor_constants`` view the SQL models join: unit_id, week_start, r_ohm, k_e, i0_a.
 
-    A week without a usable fit (too few steady samples, one operating point) takes the
-    median k_e / R of the unit's usable weeks in ``fits``, else of ``fallback`` (earlier
-    fits from the lake), so its load is still estimated.
+    The load estimate of a week uses motor constants that do not change when more data of
+    that week arrives: the unit's latest usable fit (at least MIN_MOTOR_SAMPLES steady
+    samples and a solution) of an EARLIER week, taken from ``earlier`` (unit_id,
+    week_start, n, r_ohm, k_e: fits of the weeks before ``fits``, e.g. from the lake) and
+    from the earlier weeks of ``fits`` itself. A unit without one (its first weeks) takes
+    the week's own fit when usable, else no constants (no motor-model load that week).
+    k_e drifts by a few per cent over months at most (domain.md 1.4), so last week's value
+    estimates this week's torque as well as this week's own fit does.
     """
-    usable = fits.filter((pl.col("n") >= MIN_MOTOR_SAMPLES) & pl.col("k_e").is_not_null())
-    pools = [usable.select("unit_id", "r_ohm", "k_e")]
-    if fallback is not None and fallback.height:
-        pools.append(fallback.filter((pl.col("n") >= MIN_MOTOR_SAMPLES)
-                                     & pl.col("k_e").is_not_null())
-                     .select("unit_id", "r_ohm", "k_e"))
-    med = None
-    for pool in pools:
-        m = pool.group_by("unit_id").agg(r_med=pl.col("r_ohm").median(),
-                                         k_med=pl.col("k_e").median())
-        med = m if med is None else pl.concat([med, m.join(med, on="unit_id", how="anti")])
-    out = fits.select("unit_id", "week_start", "n", "r_ohm", "k_e").join(
-        med, on="unit_id", how="left")
-    good = (pl.col("n") >= MIN_MOTOR_SAMPLES) & pl.col("k_e").is_not_null()
-    return out.select(
+    usable = (pl.col("n") >= MIN_MOTOR_SAMPLES) & pl.col("k_e").is_not_null()
+    cols = ["unit_id", "week_start", "r_ohm", "k_e"]
+    pools = [fits.filter(usable).select(cols)]
+    if earlier is not None and earlier.height:
+        pools.insert(0, earlier.filter(usable).select(cols).cast(pools[0].schema))
+    pool = (pl.concat(pools).unique(["unit_id", "week_start"], keep="last")
+            .sort("week_start")
+            .rename({"week_start": "_ws", "r_ohm": "_r_prev", "k_e": "_k_prev"}))
+    target = fits.select("unit_id", "week_start", "n", "r_ohm", "k_e").sort("week_start")
+    j = target.join_asof(pool, left_on="week_start", right_on="_ws", by="unit_id",
+                         strategy="backward", allow_exact_matches=False,
+                         check_sortedness=False)
+    prev = pl.col("_k_prev").is_not_null()
+    return j.select(
         "unit_id", "week_start",
-        r_ohm=pl.when(good).then(pl.col("r_ohm")).otherwise(pl.col("r_med")),
-        k_e=pl.when(good).then(pl.col("k_e")).otherwise(pl.col("k_med")),
+        r_ohm=pl.when(prev).then(pl.col("_r_prev")).when(usable).then(pl.col("r_ohm")),
+        k_e=pl.when(prev).then(pl.col("_k_prev")).when(usable).then(pl.col("k_e")),
         i0_a=pl.lit(float(i0_a)),
-    )
+    ).sort("unit_id", "week_start")
+
+
+def first_usable_week(fits: pl.DataFrame) -> dict[str, dt.date]:
+    """Per unit, the first week with a usable motor fit (``motor_constants_for_load``)."""
+    if fits.height == 0:
+        return {}
+    u = (fits.filter((pl.col("n") >= MIN_MOTOR_SAMPLES) & pl.col("k_e").is_not_null())
+         .group_by("unit_id").agg(pl.col("week_start").min()))
+    return dict(zip(u["unit_id"].to_list(), u["week_start"].to_list()))
 
 
 # ---------------------------------------------------------------- segments and references

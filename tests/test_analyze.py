@@ -9,10 +9,12 @@ from __future__ import annotations
 import datetime as dt
 import json
 import socket
+from pathlib import Path
 
 import numpy as np
 import polars as pl
 import pytest
+from pyarrow import table as pa_table
 
 from fleetwatch.analyze import DERIVED, analyze
 from fleetwatch.config import load_settings
@@ -65,8 +67,10 @@ def test_reports_say_what_was_done(fleet):
     a, b = fleet.first, fleet.second
     assert a.full and "first analyze" in a.reason
     assert not b.full and "day(s) with new or changed telemetry" in b.reason
-    # the second run recomputes from the Monday before the new month, not from the start
-    assert b.from_day > dt.date(2026, 6, 1) and b.from_day.weekday() == 0
+    # the second run recomputes from the day before the new month (or before a unit's last
+    # sample before it: a pause that ends in new data is whole), not from the start and not
+    # from that day's Monday: the state holds the week's earlier motor sums
+    assert dt.date(2026, 6, 1) < b.from_day <= dt.date(2026, 6, 30)
     assert b.days_recomputed < 45 and b.units == 8
     assert set(a.tables) == set(DERIVED) and all(v > 0 for v in a.tables.values())
     assert "health models ran" in b.models
@@ -95,10 +99,13 @@ def test_incremental_equals_full_rebuild(fleet, tables):
     _assert_same_tables(tables, Lake.from_settings(fleet.settings))
 
 
-def test_one_new_day_incremental_equals_full_rebuild(fleet):
+def test_one_new_day_incremental_equals_full_rebuild(fleet, monkeypatch):
     """The daily case: take the last day out, analyze, put it back and analyze again. Only
-    the last days are recomputed (the health stage resumes from its saved state) and every
-    table equals a full rebuild on the same data."""
+    the last days are recomputed (the health stage resumes from its saved state; the weekly
+    motor fits add the state's day sums; the reference fits of units whose reference period
+    is over come from the state's files) and every table equals a full rebuild on the same
+    data."""
+    from fleetwatch import fits
     lake = Lake.from_settings(fleet.settings)
     last = lake.read("telemetry", columns=["day"])["day"].max()
     rows = lake.read("telemetry", filter_sql=f"day = DATE '{last.isoformat()}'")
@@ -108,16 +115,73 @@ def test_one_new_day_incremental_equals_full_rebuild(fleet):
     analyze(fleet.settings)
     with lake.writer("test"):
         lake.append("telemetry", rows)
+    ref_rows = []
+    real = fits.creep_reference_bins
+
+    def counting(ref_cw, segments):
+        ref_rows.append(ref_cw.height)
+        return real(ref_cw, segments)
+    monkeypatch.setattr(fits, "creep_reference_bins", counting)
     rep = analyze(fleet.settings)
     assert not rep.full and rep.days_recomputed <= 9
     assert rep.from_day >= last - dt.timedelta(days=9)
-    # the health stage resumed at a Monday no earlier than the recomputed derived rows
+    # the health stage resumed at the Monday of the first recomputed day or later
     start = dt.date.fromisoformat(rep.models.split("health models ran from ")[1][:10])
-    assert start.weekday() == 0 and rep.from_day <= start <= last
+    monday = rep.from_day - dt.timedelta(days=rep.from_day.weekday())
+    assert start.weekday() == 0 and monday <= start <= last
+    # the state keeps the day sums up to the new day and names the reference-fit files
+    meta = Path(lake.path) / "_fleetwatch"
+    state = json.loads((meta / "_analyze_state.json").read_text())
+    assert state["motor_day_sums"]["days"][-1] == last.isoformat()
+    token = state["ref_cache"]["token"]
+    assert sorted(p.name for p in meta.glob("analyze_ref_*")) == [
+        f"analyze_ref_bins_{token}.parquet", f"analyze_ref_power_{token}.parquet"]
     inc = {n: lake.read(n) for n in (*DERIVED, *MODEL_KEYS)}
+    incremental_ref_rows = sum(ref_rows)
+    ref_rows.clear()
     full = analyze(fleet.settings, full=True)
     assert full.full
+    # the incremental run refitted no unit whose reference period was long over
+    assert incremental_ref_rows < sum(ref_rows) / 2
     _assert_same_tables(inc, lake)
+
+
+def test_windows_are_stored_month_by_month_and_a_new_day_leaves_old_files(fleet,
+                                                                           monkeypatch):
+    """windows and efficiency are written in (month, unit, time) order in files of a bounded
+    size, so the daily run's replacement of its recent days rewrites only the files that
+    hold those days: every older file stays as it was."""
+    import deltalake
+
+    import fleetwatch.analyze as A
+    monkeypatch.setattr(A, "STREAM_FILE_BYTES", 150_000)
+    monkeypatch.setattr(A, "STREAM_ROW_GROUP", 4096)
+    lake = Lake.from_settings(fleet.settings)
+    last = lake.read("telemetry", columns=["day"])["day"].max()
+    rows = lake.read("telemetry", filter_sql=f"day = DATE '{last.isoformat()}'")
+    with lake.writer("test"):
+        lake.delete_where("telemetry", f"day = '{last.isoformat()}'")
+    analyze(fleet.settings, full=True)
+
+    def files(name):
+        adds = pl.from_arrow(pa_table(deltalake.DeltaTable(
+            str(Path(lake.path) / name)).get_add_actions(flatten=True)))
+        return {r["path"]: (r["min.day"], r["max.day"]) for r in adds.iter_rows(named=True)}
+    before = {n: files(n) for n in ("windows", "efficiency")}
+    for n, f in before.items():
+        assert len(f) >= 3, n
+        # month-major order: no file holds days of more than two months
+        assert all((b.year * 12 + b.month) - (a.year * 12 + a.month) <= 1
+                   for a, b in f.values()), n
+    with lake.writer("test"):
+        lake.append("telemetry", rows)
+    rep = analyze(fleet.settings)
+    assert not rep.full
+    for n in ("windows", "efficiency"):
+        after = files(n)
+        old = {p for p, (a, b) in before[n].items() if b < rep.from_day}
+        assert old and old <= set(after), n          # untouched: same files, same paths
+        assert set(before[n]) - set(after)            # the recent ones were rewritten
 
 
 def test_plan_recomputes_from_new_or_removed_days_and_whole_pauses(tmp_path):
@@ -147,6 +211,20 @@ def test_plan_recomputes_from_new_or_removed_days_and_whole_pauses(tmp_path):
     p = plan_analysis(con, cfg, state, False, True)
     assert not p.full and p.from_day == dt.date(2026, 6, 15)
     assert p.to_day == dt.date(2026, 6, 22)
+    # with the week's earlier per-day motor sums in the state and U1's motor fitted before
+    # that week, the run starts on the day before U1's previous sample (June 20, 23:00)
+    # instead of that day's Monday
+    week = [f"2026-06-{d:02d}" for d in range(15, 20)]
+    st2 = dict(state, motor_day_sums={"days": week, "rows": []},
+               motor_first_usable={"U1": "2026-06-01", "U2": "2026-06-01"})
+    p2 = plan_analysis(con, cfg, st2, False, True)
+    assert p2.from_day == dt.date(2026, 6, 19) and p2.to_day == dt.date(2026, 6, 22)
+    # one of those days missing from the state, or U1 first fitted in that week: its Monday
+    st3 = dict(st2, motor_day_sums={"days": [d for d in week if d != "2026-06-16"],
+                                    "rows": []})
+    assert plan_analysis(con, cfg, st3, False, True).from_day == dt.date(2026, 6, 15)
+    st4 = dict(st2, motor_first_usable={"U1": "2026-06-15"})
+    assert plan_analysis(con, cfg, st4, False, True).from_day == dt.date(2026, 6, 15)
     # U2 comes back after six silent days: its pause starts on June 14
     back = [("U2", t0 + dt.timedelta(days=20, hours=h)) for h in range(24)]
     con.register("telemetry", frame(base + new_day + back).to_arrow())
@@ -155,6 +233,8 @@ def test_plan_recomputes_from_new_or_removed_days_and_whole_pauses(tmp_path):
     gone = [r for r in base if r[1].day != 17]
     con.register("telemetry", frame(gone).to_arrow())
     assert plan_analysis(con, cfg, state, False, True).from_day == dt.date(2026, 6, 15)
+    # ... and with the day sums at hand still from the Monday (whose rows went is unknown)
+    assert plan_analysis(con, cfg, st2, False, True).from_day == dt.date(2026, 6, 15)
     # a change inside the reference period (the first 14 days) redoes it from its start
     gone = [r for r in base if r[1].day != 10 or r[0] != "U1"]
     con.register("telemetry", frame(gone).to_arrow())

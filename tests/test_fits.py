@@ -147,15 +147,50 @@ def test_motor_drift_against_the_reference_weeks():
                            "r_drift_pct", "k_e_drift_pct"]
 
 
-def test_motor_constants_for_load_fills_weeks_without_a_fit():
-    f = pl.DataFrame({"unit_id": ["U1", "U1", "U2"], "week_start": [dt.date(2026, 6, 1),
-                                                                    dt.date(2026, 6, 8),
-                                                                    dt.date(2026, 6, 1)],
-                      "n": [500, 5, 5], "r_ohm": [1.0, None, None], "k_e": [0.3, None, None]})
-    old = pl.DataFrame({"unit_id": ["U2"], "n": [800], "r_ohm": [2.0], "k_e": [0.5]})
+def test_motor_constants_for_load_come_from_an_earlier_week():
+    """A week's load uses the latest usable fit of an EARLIER week (from the lake or from
+    the same batch), so it does not move when more data of the week arrives; a unit's first
+    weeks use their own fit when usable, else none."""
+    W = [dt.date(2026, 6, 1) + dt.timedelta(days=7 * k) for k in range(4)]
+    f = pl.DataFrame({"unit_id": ["U1"] * 4 + ["U2", "U2", "U3"],
+                      "week_start": W + [W[2], W[3], W[0]],
+                      "n": [500, 600, 5, 700, 5, 400, 900],
+                      "r_ohm": [1.0, 1.1, None, 1.3, None, 2.2, 3.0],
+                      "k_e": [0.30, 0.31, None, 0.33, None, 0.52, 0.7]})
+    old = pl.DataFrame({"unit_id": ["U2", "U2", "U9"], "week_start": [W[0], W[1], W[0]],
+                        "n": [800, 10, 800], "r_ohm": [2.0, 9.0, 5.0],
+                        "k_e": [0.5, 0.9, 0.8]})
     mc = fits.motor_constants_for_load(f, old, i0_a=0.2).sort("unit_id", "week_start")
-    assert mc["k_e"].to_list() == [0.3, 0.3, 0.5]
-    assert mc["i0_a"].to_list() == [0.2] * 3
+    assert mc["unit_id"].to_list() == ["U1"] * 4 + ["U2", "U2", "U3"]     # only f's weeks
+    # U1: own fit in its first week, then the previous week's; the week without a usable
+    # fit passes the last usable one on
+    # U2: the lake's usable week 1 (week 2 has too few samples), for both of its weeks
+    # U3: no earlier fit, its own
+    assert mc["k_e"].to_list() == [0.30, 0.30, 0.31, 0.31, 0.5, 0.5, 0.7]
+    assert mc["r_ohm"].to_list() == [1.0, 1.0, 1.1, 1.1, 2.0, 2.0, 3.0]
+    assert mc["i0_a"].to_list() == [0.2] * 7
+    # a unit whose only fit is unusable gets no constants
+    lone = pl.DataFrame({"unit_id": ["U4"], "week_start": [W[0]], "n": [3],
+                         "r_ohm": [None], "k_e": [None]}, schema=f.schema)
+    assert fits.motor_constants_for_load(lone, None, 0.2)["k_e"].to_list() == [None]
+    assert fits.first_usable_week(f) == {"U1": W[0], "U2": W[3], "U3": W[0]}
+
+
+def test_weekly_motor_sums_add_the_days_in_a_fixed_order():
+    rng = np.random.default_rng(3)
+    days = [dt.date(2026, 6, 1) + dt.timedelta(days=i) for i in range(9)]
+    d = pl.DataFrame({"unit_id": ["U1"] * 9, "day": days,
+                      **{c: rng.normal(size=9) * 1e3 for c in
+                         ("s_ii", "s_iw", "s_ww", "s_vi", "s_vw", "s_vv")},
+                      "n": rng.integers(1, 100, 9), "n_temp": rng.integers(0, 5, 9)}
+                     ).with_columns(week_start=pl.col("day").dt.truncate("1w"))
+    w = fits.motor_week_sums(d)
+    assert w["week_start"].to_list() == [dt.date(2026, 6, 1), dt.date(2026, 6, 8)]
+    assert w["n"].to_list() == [int(d["n"][:7].sum()), int(d["n"][7:].sum())]
+    # shuffled day rows give the same sums bit for bit (a split week adds up the same)
+    w2 = fits.motor_week_sums(d.sample(fraction=1.0, shuffle=True, seed=1))
+    assert w2.equals(w)
+    assert w["s_vv"][0] == sum(d["s_vv"].to_list()[:7])
 
 
 # ---------------------------------------------------------------- segments and creep

@@ -1,9 +1,11 @@
 -- name: motor_sums
 -- Sufficient statistics of the DC motor fit v_in = R*i_in + k_e*omega_in (domain.md 1.4:
--- V = E + I*R, E = k_e*omega) per unit and ISO week, over steady samples in the range.
+-- V = E + I*R, E = k_e*omega) per unit and UTC day, over steady samples in the range.
 -- Least squares needs only these sums (normal equations of the two-column fit without
 -- intercept), so the fit is exact over every steady sample without pulling samples into
--- Python; fleetwatch/fits.py solves them (same result as physics.fit_motor_constants).
+-- Python; fleetwatch/fits.py adds the days of each ISO week (the sums are additive, so an
+-- incremental run adds a new day's sums to those of the week's earlier days instead of
+-- redoing the week) and solves them (same result as physics.fit_motor_constants).
 -- Steady samples only: at constant speed the inductive drop L*di/dt is absent.
 -- Winding resistance rises with temperature, R_T = R_20*(1 + alpha*(T - 20)) (domain.md 1.4,
 -- alpha for annealed copper from memory). Where temp is logged it is taken as the winding
@@ -14,6 +16,7 @@
 -- param: alpha_per_k  1/K  runtime: temperature coefficient of copper (physics.ALPHA_COPPER_PER_K).
 -- column: unit_id  -  Drive.
 -- column: week_start  UTC-date  Monday of the ISO week.
+-- column: day  UTC-date  UTC day.
 -- column: n  -  Steady samples with v_in, i_in and n_in logged.
 -- column: n_temp  -  Of those, samples with temp logged (R referred to 20 degC).
 -- column: s_ii  A^2  Sum of ic^2, ic = i_in*(1 + alpha*(temp - 20)) (i_in without temp).
@@ -31,6 +34,7 @@ WITH x AS (
 )
 SELECT unit_id,
        date_trunc('week', day)::DATE AS week_start,
+       day,
        count(*) AS n,
        count(temp) AS n_temp,
        sum(ic * ic) AS s_ii,
@@ -40,4 +44,4 @@ SELECT unit_id,
        sum(v_in * omega_in) AS s_vw,
        sum(v_in * v_in) AS s_vv
 FROM x
-GROUP BY unit_id, date_trunc('week', day)::DATE
+GROUP BY unit_id, day

@@ -2,8 +2,8 @@
 -- Efficiency inputs per unit and window, from steady samples where output torque is logged:
 -- mean output power t_out*omega_out, mean electrical input power p_in, and mean estimated
 -- motor shaft power k_e*(i_in - i0)*omega_in (domain.md 1.4: P_shaft = T_shaft*omega with
--- T_shaft = k_t*(I - I_0)), k_e and i0 from the unit's fit of that ISO week
--- (motor_constants). efficiency.sql divides them: overall efficiency P_out/P_in and
+-- T_shaft = k_t*(I - I_0)), k_e and i0 from motor_constants (the unit's latest usable
+-- weekly fit of an earlier ISO week, see windows.sql). efficiency.sql divides them: overall efficiency P_out/P_in and
 -- variator-only efficiency P_out/P_shaft (domain.md 1.2). Ratios of window means rather
 -- than means of per-sample ratios, so a sample with a small denominator cannot dominate.
 -- Units without t_out give no rows: their drive efficiency cannot be measured

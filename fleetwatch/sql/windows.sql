@@ -5,10 +5,13 @@
 -- power means: transients and low speed make n_out*i/n_in meaningless (domain.md 2.7).
 -- Load (design.md 5): output torque t_out where the window has it ('measured'), else the
 -- estimated motor shaft torque k_e*(i_in - i0) ('motor_model', domain.md 1.4
--- T_shaft = k_t*(I - I_0), k_t = k_e in SI) with k_e of the unit's own fit for that ISO week
--- (view motor_constants, registered by analyze from fleetwatch/fits.py). The mean of
--- k_e*(i_in - i0) over the window equals k_e*(mean(i_in) - i0) because k_e is constant within
--- a week.
+-- T_shaft = k_t*(I - I_0), k_t = k_e in SI) with k_e of the unit's latest usable weekly
+-- motor fit of an EARLIER ISO week (a unit's first weeks: the week's own fit), view
+-- motor_constants, registered by analyze from fleetwatch/fits.py. k_e drifts slowly (a few
+-- per cent over months at most, domain.md 1.4), so last week's value serves as well as this
+-- week's, and a window's load does not change when later data of its week arrives: an
+-- incremental run recomputes only the new days. The mean of k_e*(i_in - i0) over the
+-- window equals k_e*(mean(i_in) - i0) because k_e is constant within a week.
 -- Energy: sum(p_in) * sample_period_s over all samples (nominal period, design.md 5).
 -- completeness = samples / (window_min*60/sample_period_s); above 1 means more samples than
 -- the logging period allows (overlapping time after a clock step back).
