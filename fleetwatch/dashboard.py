@@ -37,7 +37,7 @@ from .errors import UsageError
 __all__ = [
     "serve_dashboard", "DashboardServer", "app_path", "dashboard_command",
     "status_label", "status_colour", "SAFETY_CAPTION", "chart_spec", "chart_alt",
-    "with_markers",
+    "with_markers", "html_table", "html_tables", "HTML_TABLE_ROWS",
     "marker_layer",
     "cached", "lake_versions", "lake_snapshot", "LakeSnapshot",
 ]
@@ -669,6 +669,53 @@ def markers_display(markers):
     return markers.sort("ts", descending=True).select(
         pl.col("ts").dt.strftime("%Y-%m-%d %H:%M").alias("time (UTC)"), "source", "kind",
         "detail")
+
+
+#: Rows up to which the Unit page shows a table as static HTML (one light element: about a
+#: quarter of an interactive grid's browser time); longer tables stay interactive grids.
+HTML_TABLE_ROWS = 25
+
+_TABLE_CSS = (
+    "<style>.fw-tables{display:grid;grid-template-columns:repeat(auto-fit,minmax(360px,1fr));"
+    "gap:0.5rem 1.5rem}.fw-tables p{margin:0 0 0.3rem;font-weight:600}"
+    ".fw-table{border-collapse:collapse;font-size:0.85rem;width:100%}"
+    ".fw-table th,.fw-table td{border-bottom:1px solid rgba(128,128,128,0.3);"
+    "padding:0.2rem 0.5rem;text-align:left;vertical-align:top}"
+    ".fw-table th{font-weight:600}.fw-table td.num{text-align:right;"
+    "font-variant-numeric:tabular-nums}</style>")
+
+
+def html_table(df, status_col: str | None = None) -> str:
+    """A small polars frame as a static HTML table (values escaped; nulls as "–").
+
+    ``status_col``: a column of status labels (:func:`status_label`), drawn in their status
+    colour next to their word. Numbers are right-aligned."""
+    import html
+
+    colours = {status_label(s): status_colour(s) for s in ("alert", "watch", "normal", None)}
+    head = "".join(f"<th>{html.escape(str(c))}</th>" for c in df.columns)
+    numeric = {c for c, t in df.schema.items() if t.is_numeric()}
+    rows = []
+    for row in df.iter_rows(named=True):
+        cells = []
+        for c, v in row.items():
+            text = "–" if v is None else html.escape(
+                str(v).lower() if isinstance(v, bool) else str(v))
+            if c == status_col and v in colours:
+                text = f'<span style="color:{colours[v]};font-weight:600">{text}</span>'
+            cells.append(f'<td class="num">{text}</td>' if c in numeric else f"<td>{text}</td>")
+        rows.append("<tr>" + "".join(cells) + "</tr>")
+    return (f'<table class="fw-table"><thead><tr>{head}</tr></thead>'
+            f'<tbody>{"".join(rows)}</tbody></table>')
+
+
+def html_tables(parts: list[tuple[str, str]]) -> str:
+    """Titled HTML tables (``(title, html_table(...))``) side by side where the page is wide
+    enough, one below the other where not, as one element (st.html)."""
+    import html
+
+    body = "".join(f"<div><p>{html.escape(title)}</p>{table}</div>" for title, table in parts)
+    return f'{_TABLE_CSS}<div class="fw-tables">{body}</div>'
 
 
 def to_csv_bytes(df) -> bytes:

@@ -1,7 +1,8 @@
 """Project folders with a lake for the dashboard tests and benchmark.
 
-``build_project``: the synthetic derived tables of ``report_lake`` written through
-``Lake.overwrite``: every column of ``fleetwatch.schema`` and planted statuses whose expected
+``build_project``: the synthetic derived tables of ``report_lake`` written as analyze writes
+them (windows and efficiency streamed month by month, the rest through ``Lake.overwrite``):
+every column of ``fleetwatch.schema`` and planted statuses whose expected
 values the tests know (``Truth``); sizes are free (the benchmark's year of 24 units).
 ``simulated_fleet``: the small fleet of ``fixtures_fleet`` taken through the real pipeline
 (simulate -> ingest -> analyze), built once per pytest session and shared by the AppTest and
@@ -21,13 +22,18 @@ PACKAGED_APP = ROOT / "fleetwatch" / "dashboard_app" / "app.py"
 THIN_APP = ROOT / "dashboards" / "app.py"
 
 
-def build_project(root: Path, units: int = 16, days: int = 63, window_min: int = 60):
-    """Write ``fleetwatch.toml`` and a lake under ``root``; returns report_lake's Truth."""
+def build_project(root: Path, units: int = 16, days: int = 63, window_min: int = 60,
+                  layout: str = "analyze"):
+    """Write ``fleetwatch.toml`` and a lake under ``root``; returns report_lake's Truth.
+
+    ``layout``: "analyze" (default) stores windows and efficiency the way ``fleetwatch
+    analyze`` does (month-ordered, streamed; report_lake.write_lake), so the dashboard reads
+    the layout users get; "overwrite" sorts every table by its key."""
     root.mkdir(parents=True, exist_ok=True)
     (root / "fleetwatch.toml").write_text(f"[analyze]\nwindow_min = {window_min}\n",
                                           encoding="utf-8")
     tables, truth = synthetic_tables(units=units, days=days, window_min=window_min)
-    write_lake(root / "lake", tables)
+    write_lake(root / "lake", tables, layout=layout)
     return truth
 
 

@@ -381,12 +381,47 @@ class FrameLake:
         return {k: 0 for k in self.tables}
 
 
-def write_lake(path, tables: dict[str, pl.DataFrame]):
-    """Write the frames into a real lake at ``path`` (needs fleetwatch.lake)."""
+def write_lake(path, tables: dict[str, pl.DataFrame], layout: str = "overwrite"):
+    """Write the frames into a real lake at ``path`` (needs fleetwatch.lake).
+
+    ``layout="analyze"``: the tables analyze streams (``fleetwatch.analyze.MONTH_ORDERED``:
+    windows, efficiency) are written as analyze writes them, through ``Lake.write_stream``
+    with rows ordered by month, then key, in files and row groups of analyze's sizes, so
+    readers (the dashboard's bench) see the layout users get; the other tables, and every
+    table with the default ``"overwrite"``, through ``Lake.overwrite`` (sorted by key).
+    """
     from fleetwatch.lake import Lake
 
+    streamed: tuple = ()
+    if layout == "analyze":
+        from fleetwatch import analyze
+        streamed = tuple(getattr(analyze, "MONTH_ORDERED", ()))
+    elif layout != "overwrite":
+        raise ValueError(f"layout: 'overwrite' or 'analyze', not {layout!r}")
     lake = Lake(path)
     with lake.writer("test-setup"):
         for name, df in tables.items():
-            lake.overwrite(name, df)
+            if name in streamed:
+                _write_month_ordered(lake, name, df)
+            else:
+                lake.overwrite(name, df)
     return lake
+
+
+def _write_month_ordered(lake, name: str, df: pl.DataFrame) -> None:
+    """``df`` as analyze stores ``name``: ORDER BY month of day, then the table's key,
+    through ``Lake.write_stream`` with analyze's file and row-group sizes."""
+    from fleetwatch import analyze
+    from fleetwatch.schema import TABLES
+
+    cols = ", ".join(f"CAST({c.name} AS {c.type}) AS {c.name}" for c in TABLES[name].columns)
+    order = ", ".join(["date_trunc('month', day)", *TABLES[name].key])
+    con = duckdb.connect(":memory:")
+    try:
+        con.register("src", df.to_arrow())
+        reader = con.sql(f"SELECT {cols} FROM src ORDER BY {order}").to_arrow_reader(100_000)
+        lake.write_stream(name, reader, None,
+                          target_file_size=getattr(analyze, "STREAM_FILE_BYTES", None),
+                          max_row_group_size=getattr(analyze, "STREAM_ROW_GROUP", None))
+    finally:
+        con.close()

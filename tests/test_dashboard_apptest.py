@@ -7,7 +7,9 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import threading
 import time
+from html.parser import HTMLParser
 from pathlib import Path
 
 import polars as pl
@@ -84,6 +86,65 @@ def _page_hash(url_path: str) -> str:
     from streamlit.util import calc_hash
 
     return calc_hash(url_path)
+
+
+class _Tables(HTMLParser):
+    """Titled static tables of an st.html element: [(title, [row dicts])]."""
+
+    def __init__(self):
+        super().__init__()
+        self.tables: list = []
+        self._cell = self._title = None
+        self._title_text = ""
+        self._row: list = []
+        self._head: list = []
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "p":
+            self._title = ""
+        elif tag == "table":
+            self.tables.append([self._title_text, []])
+            self._head = []
+        elif tag in ("td", "th"):
+            self._cell = ""
+        elif tag == "tr":
+            self._row = []
+
+    def handle_endtag(self, tag):
+        if tag == "p" and self._title is not None:
+            self._title_text, self._title = self._title, None
+        elif tag in ("td", "th"):
+            (self._head if tag == "th" else self._row).append(self._cell)
+            self._cell = None
+        elif tag == "tr" and self._row:
+            self.tables[-1][1].append(dict(zip(self._head, self._row)))
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell += data
+        elif self._title is not None:
+            self._title += data
+
+
+def _html_tables(at: AppTest) -> list[tuple[str, list[dict]]]:
+    """(title, rows) of every static HTML table on the page."""
+    out = []
+    for h in at.get("html"):
+        parser = _Tables()
+        parser.feed(h.proto.body)
+        out += [(t, rows) for t, rows in parser.tables]
+    return out
+
+
+def _table(at: AppTest, column: str) -> list[dict]:
+    """Rows of the page's table (static HTML or grid) that has ``column``."""
+    for _, rows in _html_tables(at):
+        if rows and column in rows[0]:
+            return rows
+    for d in at.dataframe:
+        if column in d.value.columns:
+            return d.value.astype(object).where(d.value.notna(), None).to_dict("records")
+    raise AssertionError(f"no table with a {column!r} column")
 
 
 def _open_unit(app, unit: str) -> AppTest:
@@ -166,10 +227,12 @@ def test_choosing_a_unit_opens_it(app, project):
     assert at.title[0].value == "Unit"
     assert at.selectbox(key="unit_pick").value == wear_unit
     assert at.query_params.get("unit") in (wear_unit, [wear_unit])
-    # its status, with the word, and its reasons are shown
-    md = " ".join(m.value for m in at.markdown)
-    assert dash.status_label(truth.status_end[wear_unit]) in md
-    assert "steady slip at load" in md
+    # its status, with the word in its colour, and its reasons are shown
+    html = " ".join(h.proto.body for h in at.get("html"))
+    status = truth.status_end[wear_unit]
+    assert (f'<span style="color:{dash.status_colour(status)};font-weight:600">'
+            f'{dash.status_label(status)}</span>') in html
+    assert "<li>steady slip at load" in html
 
 
 def test_unit_page_draws_every_section(app, project):
@@ -183,15 +246,65 @@ def test_unit_page_draws_every_section(app, project):
         assert want in joined, f"missing chart {want!r} in {titles}"
     slip = next(s for s in _specs(at) if "steady slip at load" in " ".join(_titles(s)))
     assert "wear limit 5.0%" in _text(slip)
-    # health changes carry the reasons; anomaly table names the driving features
-    frames = [d.value for d in at.dataframe]
-    changes = next(f for f in frames if "reasons" in f.columns)
-    assert list(changes["status"])[:2] == [dash.status_label("alert"),
-                                           dash.status_label("watch")]   # newest first
-    assert changes["reasons"].iloc[:2].str.contains("steady slip at load").all()
-    assert list(changes["status"])[2:] == [dash.status_label("normal")]
-    top = next(f for f in frames if "top_features" in f.columns)
-    assert top["top_features"].iloc[0].startswith("slip_at_load z=")
+    # health changes carry the reasons; anomaly table names the driving features; both
+    # short, so static HTML tables side by side in one element, not grids
+    titled = dict(_html_tables(at))
+    changes = titled["Status changes and their reasons"]
+    assert [r["status"] for r in changes][:2] == [dash.status_label("alert"),
+                                                  dash.status_label("watch")]  # newest first
+    assert all("steady slip at load" in r["reasons"] for r in changes[:2])
+    assert [r["status"] for r in changes][2:] == [dash.status_label("normal")]
+    top = titled["Highest anomaly scores and the features that drove them"]
+    assert top[0]["top_features"].startswith("slip_at_load z=")
+    assert not any("reasons" in d.value.columns or "top_features" in d.value.columns
+                   for d in at.dataframe)
+    # status colours in the table come with their words
+    body = next(h.proto.body for h in at.get("html") if "Status changes" in h.proto.body)
+    assert (f'color:{dash.status_colour("alert")};font-weight:600">'
+            f'{dash.status_label("alert")}<') in body
+
+
+def test_unit_tables_longer_than_the_html_limit_stay_grids(app, project, monkeypatch):
+    """A table of more than HTML_TABLE_ROWS rows is an interactive grid (sort, scroll),
+    with its title; shorter ones stay static HTML."""
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "wear")
+    monkeypatch.setattr(dash, "HTML_TABLE_ROWS", 2)
+    at = _open_unit(app, unit)
+    changes = next(d for d in at.dataframe if "reasons" in d.value.columns)
+    assert len(changes.value) == 3
+    assert any(m.value == "**Status changes and their reasons**" for m in at.markdown)
+    assert "Status changes" not in " ".join(t for t, _ in _html_tables(at))
+    assert any("top_features" in d.value.columns for d in at.dataframe)
+
+
+def test_choosing_a_unit_prefetches_its_unit_page(app, project, monkeypatch):
+    """Choosing a unit on the Fleet page loads its Unit page's data in the background;
+    opening it then reads the cache (unit_view is not computed again)."""
+    _, truth = project
+    unit = next(u for u, c in truth.conditions.items() if c == "stall")
+    calls: list = []
+    real = dash.unit_view
+
+    def counted(source, **kw):
+        calls.append(kw["unit_id"])
+        return real(source, **kw)
+    counted.__module__, counted.__qualname__ = real.__module__, real.__qualname__
+    monkeypatch.setattr(dash, "unit_view", counted)
+    import streamlit as st
+    st.cache_data.clear()                     # the cache is the process's: start cold
+    at = _ok(app().run())
+    assert not [t for t in threading.enumerate() if t.name.endswith(f"-prefetch-{unit}")]
+    at.selectbox(key="open_unit").set_value(unit).run()
+    for t in threading.enumerate():
+        if t.name == f"fleetwatch-prefetch-{unit}":
+            t.join(60)
+    assert calls == [unit]
+    at.query_params["unit"] = unit
+    at.switch_page(UNIT_PAGE).run()
+    _ok(at)
+    assert calls == [unit]                        # served from the prefetched cache
+    assert len(at.get("vega_lite_chart")) == 4
 
 
 def test_creep_week_control_picks_the_creep_chart_week(app, project):
@@ -259,14 +372,14 @@ def test_unit_time_range_changes_what_is_drawn(app, project):
     unit = next(u for u, c in truth.conditions.items() if c == "stall")
     at = _open_unit(app, unit)
     at.radio(key="unit_range_preset").set_value("All").run()
-    health_all = next(d.value for d in _ok(at).dataframe if "reasons" in d.value.columns)
+    health_all = _table(_ok(at), "reasons")
     # the stall alert (days 45-57) and its clearing are both in the full range
-    assert health_all["status"].str.contains("alert").any()
+    assert any("alert" in r["status"] for r in health_all)
     at.radio(key="unit_range_preset").set_value("Custom").run()
     at.date_input(key="unit_range").set_value(
         (truth.start, truth.start + dt.timedelta(days=20))).run()
-    health_early = next(d.value for d in _ok(at).dataframe if "reasons" in d.value.columns)
-    assert not health_early["status"].str.contains("alert").any()
+    health_early = _table(_ok(at), "reasons")
+    assert health_early and not any("alert" in r["status"] for r in health_early)
 
 
 def test_unit_markers_include_events_and_maintenance(app, project):
@@ -274,9 +387,9 @@ def test_unit_markers_include_events_and_maintenance(app, project):
     unit = next(u for u, c in truth.conditions.items() if c == "healthy")  # wear reset day 10
     at = _open_unit(app, unit)
     at.radio(key="unit_range_preset").set_value("All").run()
-    markers = next(d.value for d in _ok(at).dataframe if "source" in d.value.columns)
-    assert "maintenance" in set(markers["source"])
-    assert markers["detail"].str.contains("wear reset").any()
+    markers = _table(_ok(at), "source")
+    assert "maintenance" in {r["source"] for r in markers}
+    assert any("wear reset" in (r["detail"] or "") for r in markers)
 
 
 # ------------------------------------------------------------------ events
@@ -448,8 +561,8 @@ def test_every_page_on_a_simulated_fleet(tmp_path_factory, monkeypatch):
     for want in ("steady slip at load", "creep vs load", "Commanded against actual ratio",
                  "Input power", "Status by day", "Anomaly score"):
         assert want in titles, f"missing chart {want!r} in {titles}"
-    markers = next(d.value for d in at.dataframe if "source" in d.value.columns)
-    assert "gross_slip" in set(markers["kind"])
+    markers = _table(at, "source")
+    assert "gross_slip" in {r["kind"] for r in markers}
     pages = [("events", "Events"), ("reports", "Reports"), ("sql", "SQL")]
     if dash.advisor_available():
         pages.insert(0, ("energy", "Energy"))
@@ -622,3 +735,44 @@ def test_a_plain_install_ships_the_app():
     for f in files:
         pkg = ".".join(f.parent.relative_to(ROOT).parts)
         assert pkg in packages, f"{f} is not in an installed package"
+
+
+# ------------------------------------------------------------------ helpers without a page
+def test_html_table_escapes_and_pairs_status_colours_with_words():
+    df = pl.DataFrame({"day": ["2026-01-02", None], "status": [dash.status_label("watch"),
+                                                               dash.status_label("alert")],
+                       "score": [0.5, 1.25], "note": ["<b>x</b> & y", "ok"]})
+    out = dash.html_table(df, status_col="status")
+    assert "<b>x</b>" not in out and "&lt;b&gt;x&lt;/b&gt; &amp; y" in out
+    assert "<td>–</td>" in out                                   # null
+    assert '<td class="num">1.25</td>' in out                    # numbers right-aligned
+    for s in ("watch", "alert"):
+        assert (f'<span style="color:{dash.status_colour(s)};font-weight:600">'
+                f'{dash.status_label(s)}</span>') in out
+    assert out.count("<tr>") == 3                                # header + 2 rows
+    both = dash.html_tables([("A <title>", out), ("B", dash.html_table(df.head(1)))])
+    assert both.count('<table class="fw-table">') == 2 and "A &lt;title&gt;" in both
+    assert both.startswith("<style>")
+
+
+def test_bench_lake_can_be_laid_out_as_analyze_writes_it(tmp_path):
+    """report_lake.write_lake(layout="analyze"): windows stored month by month (files by
+    month, then unit), the same rows as the key-sorted layout."""
+    from report_lake import synthetic_tables, write_lake
+
+    from fleetwatch.lake import Lake
+
+    tables, _ = synthetic_tables(units=3, days=40, window_min=60)
+    tables = {k: tables[k] for k in ("windows", "efficiency", "unit_days")}
+    a = write_lake(tmp_path / "a", tables, layout="analyze")
+    b = write_lake(tmp_path / "b", tables)
+    for name in tables:
+        assert a.read(name).sort(a.read(name).columns).equals(
+            b.read(name).sort(b.read(name).columns))
+    con = Lake(tmp_path / "a").connect()
+    stored = con.sql("SELECT day, unit_id FROM windows").pl()   # file order
+    months = stored["day"].dt.month_start()
+    assert months.is_sorted()                                     # month first ...
+    assert not stored["unit_id"].is_sorted()                      # ... then unit
+    with pytest.raises(ValueError):
+        write_lake(tmp_path / "c", tables, layout="sideways")

@@ -162,8 +162,17 @@ def test_every_page_in_a_real_browser(served, shots):
         link.click()
         page.wait_for_url(re.compile(rf"/unit\?unit={worn}$"), timeout=60000)
         settle(page, "Unit", charts=4)   # slip, creep, operation stack, health stack
+        # st.html's code is fetched on its first use: its elements can follow the charts
+        page.locator("table.fw-table").first.wait_for(timeout=60000)
         body = page.get_by_test_id("stMain").inner_text()
         assert dash.status_label(status[worn]) in body and "Wear" in body
+        # the short tables are static HTML (kept by st.html's sanitiser, styled): status
+        # words in their status colour
+        assert "Status changes and their reasons" in body
+        assert page.locator("table.fw-table").count() >= 1
+        word = page.locator("table.fw-table span").first
+        assert word.inner_text() in {dash.status_label(s) for s in counts}
+        assert word.evaluate("e => getComputedStyle(e).fontWeight") == "600"
         page.screenshot(path=str(shots / "2-unit.png"))
 
         # Events

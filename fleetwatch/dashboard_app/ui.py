@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import html
+import threading
 from typing import Any, Callable
 
 import streamlit as st
@@ -53,3 +54,67 @@ def chart(spec: dict | None, empty: str | None = None) -> None:
             st.info(empty)
         return
     st.vega_lite_chart(spec=spec, width="stretch", theme=None, alt=dash.chart_alt(spec))
+
+
+def tables(parts: list[tuple[str, Any, str | None]], key: str) -> None:
+    """Titled tables ``(title, polars frame, status column or None)``: those of at most
+    :data:`fleetwatch.dashboard.HTML_TABLE_ROWS` rows as static HTML, side by side, in one
+    element (much lighter in the browser than grids); longer ones as interactive grids
+    (keys ``{key}_table_{i}``), below."""
+    short = [(t, dash.html_table(df, status_col=s)) for t, df, s in parts
+             if df.height <= dash.HTML_TABLE_ROWS]
+    if short:
+        st.html(dash.html_tables(short))
+    for i, (title, df, _) in enumerate(parts):
+        if df.height > dash.HTML_TABLE_ROWS:
+            st.markdown(f"**{title}**")
+            st.dataframe(df, hide_index=True, placeholder="–", key=f"{key}_table_{i}")
+
+
+#: The Unit page's time range when it opens (its radio's default).
+DEFAULT_RANGE = list(dash.RANGE_PRESETS)[1]
+
+
+def unit_defaults(span) -> tuple:
+    """(start, end, creep week) the Unit page opens with for a unit's analysed ``span``."""
+    start, end = dash.preset_range(DEFAULT_RANGE, *span)
+    weeks = dash.weeks_in(start, end)
+    return start, end, (weeks[0] if weeks else None)
+
+
+def _warm_unit(settings, unit: str) -> None:
+    """Run the Unit page's data calls for ``unit`` at its default range and week, into the
+    shared cache (same keys as the page's own calls). Errors are left for the page."""
+    try:
+        span = dash.cached(dash.unit_span, settings, unit_id=unit)
+        if span is None:
+            return
+        start, end, week = unit_defaults(span)
+        dash.cached(dash.unit_view, settings, unit_id=unit, start=start, end=end,
+                    limit=settings.slip_limit, threshold=settings.watch_score)
+        dash.cached(dash.creep_spec, settings, unit_id=unit, week=week,
+                    timezone=settings.plant_timezone)
+    except Exception:  # noqa: BLE001 - only a head start; the page reports its errors
+        pass
+
+
+def prefetch_unit(settings, unit: str | None) -> threading.Thread | None:
+    """Warm the cache for the Unit page of ``unit`` in a background thread (once per session
+    and unit), so that opening it does not wait for the lake. Streamlit's cache holds a
+    lock per key: a page that asks while the thread still computes waits for that result
+    instead of computing it a second time. Returns the thread (None: nothing started)."""
+    if unit is None:
+        return None
+    done = st.session_state.setdefault("_fw_prefetched", set())
+    if unit in done:
+        return None
+    done.add(unit)
+    from streamlit.runtime.scriptrunner import add_script_run_ctx, get_script_run_ctx
+
+    thread = threading.Thread(target=_warm_unit, args=(settings, unit), daemon=True,
+                              name=f"fleetwatch-prefetch-{unit}")
+    ctx = get_script_run_ctx(suppress_warning=True)
+    if ctx is not None:
+        add_script_run_ctx(thread, ctx)
+    thread.start()
+    return thread

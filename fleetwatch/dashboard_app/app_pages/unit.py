@@ -3,6 +3,8 @@ load by week, commanded vs actual ratio, input power with efficiency or residual
 temperature, events and maintenance on the time axis, health history, anomaly scores."""
 from __future__ import annotations
 
+import html
+
 import streamlit as st
 
 from fleetwatch import dashboard as dash
@@ -34,7 +36,8 @@ span = ui.load(dash.unit_span, settings, unit_id=unit)
 if span is None:
     ui.no_data(f"analysed days for {unit}")
     st.stop()
-preset = c2.radio("Time range", list(dash.RANGE_PRESETS), index=1, horizontal=True,
+preset = c2.radio("Time range", list(dash.RANGE_PRESETS),
+                  index=list(dash.RANGE_PRESETS).index(ui.DEFAULT_RANGE), horizontal=True,
                   key="unit_range_preset")
 start, end = dash.preset_range(preset, *span)
 if preset == "Custom":
@@ -60,13 +63,15 @@ now = overview.filter(overview["unit_id"] == unit)
 if now.height:
     r = now.row(0, named=True)
     line = (f"{ui.status_badge(r['status'])} since {r['since'] or '–'} · days to slip "
-            f"limit: **{dash.fmt_days(r['days_to_limit'])}** · last data "
+            f"limit: <b>{dash.fmt_days(r['days_to_limit'])}</b> · last data "
             f"{r['last_data']:%Y-%m-%d %H:%M} UTC" if r["last_data"] else
             f"{ui.status_badge(r['status'])}")
-    # one element for the status and its reasons (each element costs the browser a render)
-    reasons = [f"- {x}" for x in filter(None, (r["reasons"] or "").split(" | "))]
-    st.markdown("\n\n".join([line, "\n".join(reasons)]) if reasons else line,
-                unsafe_allow_html=True)
+    # one element for the status and its reasons (each element costs the browser a
+    # render), as plain HTML: no Markdown parser with raw-HTML support to run in the browser
+    reasons = "".join(f"<li>{html.escape(x)}</li>"
+                      for x in filter(None, (r["reasons"] or "").split(" | ")))
+    st.html(f"<div>{line}</div>" + (f'<ul style="margin:0.3rem 0 0">{reasons}</ul>'
+                                     if reasons else ""))
 
 st.subheader("Wear")
 w1, w2 = st.columns(2)
@@ -83,19 +88,19 @@ ui.chart(view.charts["operation"], empty="No steady-state operation data in this
 
 st.subheader("Health")
 ui.chart(view.charts["health"], empty="No health results or anomaly scores in this range.")
-h1, h2 = st.columns(2)
-with h1:
-    st.markdown("**Status changes and their reasons**")
-    st.dataframe(view.health_changes, hide_index=True, placeholder="–", key="unit_health_table")
-with h2:
-    if view.top_scores.height:
-        st.markdown("**Highest anomaly scores and the features that drove them**")
-        st.dataframe(view.top_scores, hide_index=True, placeholder="–", key="unit_scores_table")
-for note in view.missing:
-    st.caption(note)
+# short tables as static HTML in one element (an interactive grid costs the browser about
+# four times as much); a table too long for that stays a grid
+tables = [("Status changes and their reasons", view.health_changes, "status")]
+if view.top_scores.height:
+    tables.append(("Highest anomaly scores and the features that drove them",
+                   view.top_scores, None))
+ui.tables(tables, key="unit")
+if view.missing:
+    st.caption(" ".join(view.missing))
 
 st.subheader("Events and maintenance")
 if view.markers.is_empty():
     st.caption("No events or maintenance in this range.")
 else:
-    st.dataframe(view.markers, hide_index=True, placeholder="–", key="unit_markers_table")
+    ui.tables([(f"{view.markers.height} in this range, newest first", view.markers, None)],
+              key="unit_markers")
