@@ -6,7 +6,7 @@ models of ``fleetwatch/sql`` in DuckDB over the lake's views and the per-unit fi
 see the old or the new version), and finally calls ``fleetwatch.models.run_models`` when
 that stage is installed.
 
-Incremental by default. A small state file in the lake (``_fleetwatch/analyze_state.json``)
+Incremental by default. A small state file in the lake (``_fleetwatch/_analyze_state.json``)
 records what the derived tables reflect: telemetry rows per UTC day, each unit's first
 sample, the wear resets and a fingerprint of the analyze settings, the SQL files and
 fits.py. The next run compares the rows per day (cheap: ``day`` is the partition column)
