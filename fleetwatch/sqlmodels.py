@@ -357,25 +357,14 @@ def describe_models(models: Iterable[SqlModel] | None = None) -> list[dict[str, 
 
 
 # ---------------------------------------------------------------- samples without window functions
-#: The scope of samples.sql (its ``scope`` CTE, same parameters): the chunk's telemetry plus
-#: each unit's last sample of the 31 days before it.
-_SAMPLES_SCOPE = """
-SELECT unit_id, ts, day, v_in, i_in, p_in, n_in, n_out, ratio_cmd, t_out, temp,
-       false AS is_prior, epoch(ts) AS _ep
-FROM telemetry
-WHERE ts >= $from_ts - to_seconds($context_s)
-  AND ts < $to_ts + to_seconds($context_s)
-  AND day >= (($from_ts - to_seconds($context_s)) AT TIME ZONE 'UTC')::DATE
-  AND day <= (($to_ts + to_seconds($context_s)) AT TIME ZONE 'UTC')::DATE
-UNION ALL
-SELECT unit_id, max(ts), NULL, NULL, NULL, NULL, arg_max(n_in, ts), NULL,
-       arg_max(ratio_cmd, ts), NULL, NULL, true, epoch(max(ts))
-FROM telemetry
-WHERE ts < $from_ts - to_seconds($context_s)
-  AND day >= (($from_ts - to_seconds($context_s)) AT TIME ZONE 'UTC')::DATE - 31
-  AND day <= (($from_ts - to_seconds($context_s)) AT TIME ZONE 'UTC')::DATE
-GROUP BY unit_id
-"""
+def _samples_scope() -> str:
+    """The ``scope`` CTE of samples.sql (the chunk's telemetry plus each unit's last sample
+    of the 31 days before it; same parameters), read from the file so the two paths cannot
+    drift, with ``epoch(ts) AS _ep`` added."""
+    sql = model("samples").sql
+    start = sql.index("WITH scope AS (") + len("WITH scope AS (")
+    end = sql.index("\n),\nlagged AS (", start)
+    return f"SELECT *, epoch(ts) AS _ep FROM ({sql[start:end]}\n)"
 
 
 def samples_frame(con: Any, settings: Any, runtime: Mapping[str, Any] | None = None):
@@ -400,7 +389,7 @@ def samples_frame(con: Any, settings: Any, runtime: Mapping[str, Any] | None = N
     gap = float(p["gap_min_s"])
     # epoch() comes from DuckDB: its double rounding differs from polars' in the last bit
     scope = pl.from_arrow(con.sql(
-        _SAMPLES_SCOPE, params={k: p[k] for k in ("from_ts", "to_ts", "context_s")}
+        _samples_scope(), params={k: p[k] for k in ("from_ts", "to_ts", "context_s")}
     ).to_arrow_table())
     # day (from the partition) is null on the prior rows only
     scope = _sort_unit_ts(scope)
