@@ -116,37 +116,45 @@ islands AS (
            (ts AT TIME ZONE 'UTC')::DATE AS piece_day
     FROM hits
 ),
+-- each run's pieces (one per UTC day it touches) first, then the run totals from the
+-- pieces: far fewer rows to join than hit samples
+piece_stats AS (
+    SELECT unit_id, kind, signal, gap_seg, isl, piece_day,
+           min(t0) AS piece_t0,
+           max(ts) AS end_ts,
+           count(*) AS n,
+           max(value) AS vmax,
+           arg_max(ratio_cmd, value) AS ratio_at_peak,
+           arg_min(ratio_cmd, ts) AS ratio_first,
+           any_value(value) AS value,
+           any_value(unit) AS unit
+    FROM islands
+    GROUP BY unit_id, kind, signal, gap_seg, isl, piece_day
+),
 run_stats AS (
     SELECT unit_id, kind, signal, gap_seg, isl,
-           min(t0) AS run_t0, max(ts) AS run_t1, count(*) AS run_n
-    FROM islands
-    GROUP BY ALL
+           min(piece_t0) AS run_t0, max(end_ts) AS run_t1, sum(n) AS run_n
+    FROM piece_stats
+    GROUP BY unit_id, kind, signal, gap_seg, isl
 ),
 pieces AS (
-    SELECT i.unit_id, i.kind, i.signal,
-           greatest(min(i.t0), i.piece_day::TIMESTAMP AT TIME ZONE 'UTC') AS start_ts,
-           max(i.ts) AS end_ts,
-           count(*) + CASE WHEN i.kind = 'flatline' AND min(i.t0) >= i.piece_day::TIMESTAMP
+    SELECT p.unit_id, p.kind, p.signal,
+           greatest(p.piece_t0, p.piece_day::TIMESTAMP AT TIME ZONE 'UTC') AS start_ts,
+           p.end_ts,
+           p.n + CASE WHEN p.kind = 'flatline' AND p.piece_t0 >= p.piece_day::TIMESTAMP
                                 AT TIME ZONE 'UTC' THEN 1
-                           WHEN i.kind = 'clock_jump' AND min(i.t0) >= i.piece_day::TIMESTAMP
+                      WHEN p.kind = 'clock_jump' AND p.piece_t0 >= p.piece_day::TIMESTAMP
                                 AT TIME ZONE 'UTC' THEN 4
-                           ELSE 0 END AS samples,
-           max(i.value) AS vmax,
-           arg_max(i.ratio_cmd, i.value) AS ratio_at_peak,
-           arg_min(i.ratio_cmd, i.ts) AS ratio_first,
-           any_value(i.value) AS value,
-           any_value(i.unit) AS unit,
-           any_value(r.run_t0) AS run_t0,
-           any_value(r.run_t1) AS run_t1
-    FROM islands AS i
+                      ELSE 0 END AS samples,
+           p.vmax, p.ratio_at_peak, p.ratio_first, p.value, p.unit, r.run_t0, r.run_t1
+    FROM piece_stats AS p
     JOIN run_stats AS r USING (unit_id, kind, signal, gap_seg, isl)
-    WHERE CASE i.kind
+    WHERE CASE p.kind
               WHEN 'gross_slip' THEN r.run_n >= $gross_slip_min_samples
               WHEN 'stall' THEN epoch(r.run_t1) - epoch(r.run_t0) >= $stall_min_s
               WHEN 'flatline' THEN epoch(r.run_t1) - epoch(r.run_t0) >= $flatline_min_s
               WHEN 'clock_jump' THEN r.run_n >= 3
           END
-    GROUP BY i.unit_id, i.kind, i.signal, i.gap_seg, i.isl, i.piece_day
 ),
 described AS (
     SELECT *,
