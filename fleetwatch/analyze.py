@@ -421,13 +421,37 @@ def run_analysis(con, settings: Any, plan: AnalysisPlan,
             con.unregister("samples")
         except Exception:  # noqa: BLE001 - not registered
             pass
-        for name in ("motor_sums", "windows", "window_power", "events",
-                     "day_stats", "efficiency", "unit_days"):
+        for name in CHUNK_TABLES:
+            try:
+                con.execute(f"DROP VIEW IF EXISTS {name}")
+            except Exception:  # noqa: BLE001 - a table of that name: dropped below
+                pass
+        for name in ("motor_sums", *CHUNK_TABLES, "efficiency", "unit_days"):
             try:
                 con.execute(f"DROP TABLE IF EXISTS {name}")
             except Exception:  # noqa: BLE001 - best effort; the spill folder goes below
                 pass
         shutil.rmtree(tmp, ignore_errors=True)
+
+
+#: The per-chunk SQL models (after samples and motor_sums), in run order.
+CHUNK_TABLES = ("windows", "window_power", "events", "day_stats")
+
+
+def _park_chunk(con, parts: Path, k: int) -> None:
+    """Move chunk ``k``'s CHUNK_TABLES out of DuckDB into Parquet parts under ``parts``
+    (sorted by the table's key, so a later filter on unit_id skips most row groups).
+    Kept as tables, they piled up in DuckDB's memory chunk after chunk (about 0.25 GB per
+    4 M telemetry rows at 60 s) and held it at its limit while the next chunk's samples
+    were built: that was most of analyze's peak RSS. Parquet keeps every column type the
+    models produce (checked in tests/test_analyze.py)."""
+    for name in CHUNK_TABLES:
+        d = parts / name
+        d.mkdir(parents=True, exist_ok=True)
+        order = ", ".join(TABLES[name].key) if name in TABLES else "unit_id"
+        con.execute(f"COPY (SELECT * FROM {name} ORDER BY {order}) "
+                    f"TO '{d / f'part-{k:05d}.parquet'}' (FORMAT parquet)")
+        con.execute(f"DROP TABLE {name}")
 
 
 def _release_memory(collect: bool = True) -> None:
@@ -617,6 +641,7 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     head_sums = old_sums.filter((pl.col("day") >= monday0) & (pl.col("day") < plan.from_day))
 
     ctx = _context_s(settings)
+    parts = Path(tmp) / "parts"
     motor_weeks: list[pl.DataFrame] = []
     day_sums: list[pl.DataFrame] = []
     sum_cols = ", ".join(_SUM_SCHEMA)
@@ -640,14 +665,18 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
         new_fits = week_fits.select("unit_id", "week_start", "n", "r_ohm", "k_e")
         earlier = new_fits if earlier is None else pl.concat([earlier, new_fits])
         con.register("motor_constants", mc.to_arrow())
-        first = k == 0
-        for name in ("windows", "window_power", "events", "day_stats"):
-            run_model(con, models[name], settings, rt, replace=first)
+        for name in CHUNK_TABLES:
+            run_model(con, models[name], settings, rt)
         con.unregister("samples")
         del samples_tbl
         con.execute("DROP TABLE motor_sums")
         con.unregister("motor_constants")
+        _park_chunk(con, parts, k)
         tick()
+    # the chunks' tables, from their Parquet parts, under the same names
+    for name in CHUNK_TABLES:
+        con.execute(f"CREATE VIEW {name} AS SELECT * FROM "
+                    f"read_parquet('{parts / name / '*.parquet'}')")
 
     # the day sums the next run may need: the days from the Monday a week before the last
     # day's (a run that starts inside a week adds them up with its new days)
@@ -781,8 +810,8 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     for view in ("creep_daily", "power_models"):
         con.unregister(view)
     del flat, daily
-    for name in ("windows", "window_power", "events", "day_stats"):
-        con.execute(f"DROP TABLE {name}")
+    for name in CHUNK_TABLES:
+        con.execute(f"DROP VIEW {name}")
     store("efficiency")
     store("unit_days")
     for name, df in (("motor_fits", motor_table), ("creep_fits", creep_table)):

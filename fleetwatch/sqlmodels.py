@@ -383,16 +383,60 @@ def samples_frame(con: Any, settings: Any, runtime: Mapping[str, Any] | None = N
     """
     import polars as pl
 
+    parts = list(samples_slices(con, settings, runtime))
+    return parts[0] if len(parts) == 1 else pl.concat(parts, rechunk=False)
+
+
+def samples_slices(con: Any, settings: Any, runtime: Mapping[str, Any] | None = None):
+    """samples_frame's rows as a sequence of frames, each holding whole units (about
+    SAMPLES_SLICE_ROWS rows): every step looks only at rows of the same unit, so only one
+    slice's intermediate columns are alive at a time (analyze's peak memory was this step).
+    A generator: the caller can convert and drop each slice before the next is built."""
+    import polars as pl
+
     p = model_params(model("samples"), settings, runtime)
     floor = float(p["steady_n_in_min_rpm"])
     settle = float(p["steady_settle_s"])
     gap = float(p["gap_min_s"])
     # epoch() comes from DuckDB: its double rounding differs from polars' in the last bit
+    # (no rechunk: the sort below copies the rows into one piece anyway)
     scope = pl.from_arrow(con.sql(
         _samples_scope(), params={k: p[k] for k in ("from_ts", "to_ts", "context_s")}
-    ).to_arrow_table())
+    ).to_arrow_table(), rechunk=False)
     # day (from the partition) is null on the prior rows only
     scope = _sort_unit_ts(scope)
+    cuts = _unit_slices(scope["unit_id"]) or [(0, 0)]
+    for a, b in cuts:
+        yield _samples_slice(scope.slice(a, b - a), floor, settle, gap, p["from_ts"],
+                             p["to_ts"])
+
+
+#: Rows per slice of whole units in samples_frame (a unit longer than this is one slice).
+SAMPLES_SLICE_ROWS = 1_000_000
+
+
+def _unit_slices(unit_id) -> list[tuple[int, int]]:
+    """Row ranges [a, b) of about SAMPLES_SLICE_ROWS rows of a frame whose rows are grouped
+    by unit, cut only where the unit changes."""
+    import numpy as np
+
+    n = len(unit_id)
+    if n == 0:
+        return []
+    starts = np.flatnonzero((unit_id != unit_id.shift(1)).fill_null(True).to_numpy())
+    out, a = [], 0
+    for s in starts[1:]:
+        if s - a >= SAMPLES_SLICE_ROWS:
+            out.append((a, int(s)))
+            a = int(s)
+    out.append((a, n))
+    return out
+
+
+def _samples_slice(scope, floor: float, settle: float, gap: float, from_ts, to_ts):
+    """samples_frame's rows for ``scope``: rows of whole units, each unit's in ts order."""
+    import polars as pl
+
     c = pl.col
     first = (c("unit_id") != c("unit_id").shift(1)).fill_null(True)
     idx = pl.int_range(pl.len(), dtype=pl.Int64)
@@ -422,7 +466,6 @@ def samples_frame(con: Any, settings: Any, runtime: Mapping[str, Any] | None = N
         gap_seg=pl.when(c("dt_prev_s") > gap).then(c("seq"))
         .when(c("_first")).then(pl.lit(0, pl.Int64)).forward_fill())
     pi = math.pi
-    from_ts, to_ts = p["from_ts"], p["to_ts"]
     out = df.filter(~c("is_prior")).select(
         "unit_id", "ts", "day", "seq",
         "v_in", "i_in", "p_in", "n_in", "n_out", "ratio_cmd", "t_out", "temp",
@@ -467,12 +510,19 @@ def run_samples(con: Any, settings: Any, runtime: Mapping[str, Any] | None = Non
     while the view is used)."""
     import duckdb
 
+    import pyarrow as pa
+
+    parts = []
     try:
-        df = samples_frame(con, settings, runtime)
+        # each slice goes to Arrow as soon as it is built: polars aligns a frame's chunks
+        # (a copy) when converting, and one slice's copy is far smaller than the chunk's
+        for part in samples_slices(con, settings, runtime):
+            parts.append(part.to_arrow())
+            del part
     except duckdb.Error as exc:
         m = model("samples")
         raise SqlModelError(f"{m.path}:{m.body_line}: model 'samples' (polars path) failed: "
                             f"{str(exc).splitlines()[0]}") from exc
-    tbl = df.to_arrow()
+    tbl = pa.concat_tables(parts)
     con.register(into, tbl)
     return tbl

@@ -461,3 +461,25 @@ def test_cli_analyze_json_and_error_lines(fleet, tmp_path, capsys, monkeypatch):
     err = capsys.readouterr().err.splitlines()
     assert err[0] == "Error: the lake has no telemetry yet"
     assert err[1].startswith("Hint: Ingest drive logs first")
+
+
+def test_chunk_tables_keep_their_column_types_through_parquet_parts(fleet, monkeypatch):
+    """analyze moves each chunk's window-level tables out of DuckDB into Parquet parts and
+    reads them back as views: every column must come back with the type the SQL model
+    produced (DuckDB writes some types, HUGEINT for one, as another Parquet type)."""
+    from fleetwatch import analyze as an
+    real = an._park_chunk
+    seen: dict[str, tuple[list, list]] = {}
+
+    def checking(con, parts, k):
+        before = {n: con.sql(f"DESCRIBE {n}").fetchall() for n in an.CHUNK_TABLES}
+        real(con, parts, k)
+        for n in an.CHUNK_TABLES:
+            after = con.sql(f"DESCRIBE SELECT * FROM read_parquet("
+                            f"'{parts / n / f'part-{k:05d}.parquet'}')").fetchall()
+            seen[n] = ([r[:2] for r in before[n]], [r[:2] for r in after])
+    monkeypatch.setattr(an, "_park_chunk", checking)
+    analyze(fleet.settings, full=True)
+    assert set(seen) == set(an.CHUNK_TABLES)
+    for name, (before, after) in seen.items():
+        assert before == after, name

@@ -12,7 +12,7 @@ import polars as pl
 import pytest
 from hypothesis import given, settings as hsettings, strategies as st
 
-from fleetwatch import physics
+from fleetwatch import physics, sqlmodels
 from fleetwatch.config import load_settings
 from fleetwatch.sqlmodels import model, run_model, run_samples
 
@@ -88,8 +88,13 @@ def assert_same(ref: pl.DataFrame, got: pl.DataFrame) -> None:
             assert a.to_list() == b.to_list(), name
 
 
+@pytest.mark.parametrize("slice_rows", [None, 1, 257])
 @pytest.mark.parametrize("seed", range(6))
-def test_polars_samples_equal_samples_sql(cfg, seed):
+def test_polars_samples_equal_samples_sql(cfg, seed, slice_rows, monkeypatch):
+    # slice_rows: the polars path builds the frame a slice of whole units at a time; small
+    # slices (one unit each, or a few hundred rows) must give the same rows as one slice
+    if slice_rows:
+        monkeypatch.setattr(sqlmodels, "SAMPLES_SLICE_ROWS", slice_rows)
     df = random_telemetry(seed)
     ts = df["ts"].sort()
     # the range starts mid-data, so rows before it are context and the 31-day look-back
@@ -184,3 +189,21 @@ def test_gap_segment_and_settle_clock_restart_per_unit(cfg):
         g = got.filter(pl.col("unit_id") == u).sort("ts")
         assert g["gap_seg"].to_list() == [0] * 20 + [21] * 10
         assert g["steady"].to_list()[:3] == [False, False, True]    # 120 s settle
+
+
+@pytest.mark.parametrize("slice_rows", [1, 3, 5, 100])
+def test_unit_slices_cut_only_between_units_and_cover_every_row(slice_rows, monkeypatch):
+    monkeypatch.setattr(sqlmodels, "SAMPLES_SLICE_ROWS", slice_rows)
+    units = pl.Series(["A"] * 4 + ["B"] + ["C"] * 7 + ["D"] * 2)
+    cuts = sqlmodels._unit_slices(units)
+    assert cuts[0][0] == 0 and cuts[-1][1] == len(units)
+    assert all(b == c for (_, b), (c, _) in zip(cuts, cuts[1:]))     # contiguous
+    for i, (a, b) in enumerate(cuts):
+        assert a < b
+        assert a == 0 or units[a] != units[a - 1]                      # a unit starts
+        if i < len(cuts) - 1:
+            # long enough, and it would not be without its last unit
+            start_of_last = max(j for j in range(a, b) if j == a or units[j] != units[j - 1])
+            assert b - a >= slice_rows
+            assert start_of_last == a or start_of_last - a < slice_rows
+    assert sqlmodels._unit_slices(pl.Series([], dtype=pl.String)) == []
