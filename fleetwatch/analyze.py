@@ -51,7 +51,7 @@ from typing import Any, Callable, Optional
 import polars as pl
 import pyarrow as pa
 
-from . import fits, physics
+from . import fits, physics, sqlmodels
 from .errors import ConfigError, LakeError
 from .schema import TABLES
 from .sqlmodels import load_models, run_model, run_samples
@@ -182,7 +182,7 @@ def fingerprint(settings: Any) -> str:
     for m in load_models():
         h.update(m.sql.encode())
     h.update(Path(fits.__file__).read_bytes())
-    h.update(Path(run_samples.__code__.co_filename).read_bytes())
+    h.update(Path(sqlmodels.__file__).read_bytes())
     h.update(f"partitioned={sorted(PARTITIONED.items())!r}".encode())
     return h.hexdigest()[:16]
 
