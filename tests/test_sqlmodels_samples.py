@@ -207,3 +207,38 @@ def test_unit_slices_cut_only_between_units_and_cover_every_row(slice_rows, monk
             assert b - a >= slice_rows
             assert start_of_last == a or start_of_last - a < slice_rows
     assert sqlmodels._unit_slices(pl.Series([], dtype=pl.String)) == []
+
+
+def test_prior_sample_found_a_day_back_or_up_to_31_days_back(cfg, monkeypatch):
+    """The polars path reads the day before the scope first and looks further back only for
+    units without a sample there: same rows as samples.sql's single 31-day look-back."""
+    start = T0 + dt.timedelta(days=60)
+    rows = []
+    for unit, back in (("A", dt.timedelta(hours=5)), ("B", dt.timedelta(days=5)),
+                       ("C", dt.timedelta(days=40)), ("D", dt.timedelta(days=3))):
+        for k in range(3):                                  # older samples before the last
+            rows.append((unit, start - back - dt.timedelta(minutes=10 * k)))
+        if unit != "D":                                     # D: no sample in the scope
+            rows += [(unit, start + dt.timedelta(minutes=k)) for k in range(5)]
+    n = len(rows)
+    df = pl.DataFrame({"unit_id": [r[0] for r in rows], "ts": [r[1] for r in rows],
+                       "v_in": [24.0] * n, "i_in": [1.0] * n, "p_in": [24.0] * n,
+                       "n_in": [1500.0] * n, "n_out": [1400.0] * n, "ratio_cmd": [1.0] * n,
+                       "t_out": [None] * n, "temp": [40.0] * n},
+                      schema=SCHEMA).with_columns(day=pl.col("ts").dt.date())
+    seen = []
+    real = duckdb.DuckDBPyConnection.register
+
+    def spy(con, name, data):
+        seen.append(name)
+        return real(con, name, data)
+    monkeypatch.setattr(duckdb.DuckDBPyConnection, "register", spy, raising=False)
+    ref, got, _ = both(cfg, df, start, start + dt.timedelta(hours=1), context_s=60.0)
+    assert "_prior_units" in seen                      # B and C were looked up further back
+    assert_same(ref, got)
+    first = got.group_by("unit_id").agg(pl.col("prev_ts").sort_by("ts").first())
+    prev = dict(zip(first["unit_id"], first["prev_ts"]))
+    assert prev["A"] == start - dt.timedelta(hours=5)
+    assert prev["B"] == start - dt.timedelta(days=5)
+    assert prev["C"] is None                            # beyond the 31 days
+    assert "D" not in prev
