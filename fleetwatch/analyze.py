@@ -394,6 +394,30 @@ def _schema_select(name: str, source: str, where: str = "") -> str:
     return f"SELECT {cols} FROM {source} {where} ORDER BY {order}"
 
 
+def _month_reader(con, name: str, where: str, params: dict | None):
+    """Rows of table ``name`` (a MONTH_ORDERED one) in its stored order as an Arrow
+    reader: one query per month, each sorted on its own. The same order as one query
+    ordered by month first, but DuckDB sorts a month (under 1 M windows at 200 units)
+    at a time instead of the whole table within the write phase's small memory limit:
+    about 20 % less CPU for windows (10 M rows) in a full run."""
+    params = dict(params or {})
+    where_sql = f"{where} AND" if where else "WHERE"
+    months = [r[0] for r in con.execute(
+        f"SELECT DISTINCT date_trunc('month', day)::DATE AS m FROM {name} {where} "
+        "ORDER BY m", params or None).fetchall()]
+    first = con.sql(_schema_select(name, name, f"{where_sql} false"), params=params or None)
+    schema = first.to_arrow_table().schema
+
+    def batches():
+        for m in months:
+            nxt = (m.replace(day=28) + dt.timedelta(days=4)).replace(day=1)
+            rdr = con.sql(_schema_select(name, name, f"{where_sql} day >= $_m0 AND day < $_m1"),
+                          params={**params, "_m0": m, "_m1": nxt}
+                          ).to_arrow_reader(STREAM_BATCH_ROWS)
+            yield from rdr
+    return pa.RecordBatchReader.from_batches(schema, batches())
+
+
 def run_analysis(con, settings: Any, plan: AnalysisPlan,
                  write: Callable[[str, Any, Optional[dt.date]], int],
                  progress: Optional[Callable[[int, Optional[int]], None]] = None,
@@ -702,8 +726,11 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
         """Stream table ``name`` (exactly its contract columns, in key order) from DuckDB
         to ``write``: one commit, about one batch in Python at a time."""
         params = {"from_day": plan.from_day} if where else None
-        reader = con.sql(_schema_select(name, name, where), params=params
-                         ).to_arrow_reader(STREAM_BATCH_ROWS)
+        if name in MONTH_ORDERED:
+            reader = _month_reader(con, name, where, params)
+        else:
+            reader = con.sql(_schema_select(name, name, where), params=params
+                             ).to_arrow_reader(STREAM_BATCH_ROWS)
         written[name] = write(name, reader, from_day)
         del reader
         _release_memory(collect=full)
