@@ -415,8 +415,9 @@ def _read_scope(con: Any, params: dict):
     incremental day) and about 0.8 s of CPU per chunk. The last sample almost always lies
     in the day before, so that day is read first (the same query, looking back 1 day
     instead of 31); a unit's latest sample of the 31 days is its latest of the last day
-    when it has one there. Only units with rows in the scope and no prior row yet are
-    then looked up over the 31 days. Units without rows in the scope may miss a prior
+    when it has one there. Only units with rows in the scope and no prior row yet (or
+    one whose n_in or ratio_cmd is null: arg_max skips nulls) are then looked up over the
+    31 days. Units without rows in the scope may miss a prior
     row: it would be dropped with the other prior rows and changes nothing else.
     """
     import polars as pl
@@ -429,8 +430,14 @@ def _read_scope(con: Any, params: dict):
     # epoch() comes from DuckDB: its double rounding differs from polars' in the last bit
     # (no rechunk: the sort after this copies the rows into one piece anyway)
     scope = pl.from_arrow(con.sql(near, params=params).to_arrow_table(), rechunk=False)
-    units = scope.group_by("unit_id").agg(pl.col("is_prior").any())
-    need = units.filter(~pl.col("is_prior")).select("unit_id")
+    c = pl.col
+    # arg_max skips null values: a prior row whose n_in or ratio_cmd is null may take an
+    # older value from the 31 days (ingest rejects such rows, but the reference allows them)
+    units = scope.group_by("unit_id").agg(
+        in_scope=(~c("is_prior")).any(),
+        settled=(c("is_prior") & c("n_in").is_not_null()
+                 & c("ratio_cmd").is_not_null()).any())
+    need = units.filter(c("in_scope") & ~c("settled")).select("unit_id")
     if need.height:
         con.register("_prior_units", need.to_arrow())
         try:
@@ -439,6 +446,7 @@ def _read_scope(con: Any, params: dict):
                           params=params).to_arrow_table()
         finally:
             con.unregister("_prior_units")
+        scope = scope.filter(~(c("is_prior") & c("unit_id").is_in(need["unit_id"])))
         if far.num_rows:
             scope = pl.concat([scope, pl.from_arrow(far, rechunk=False)], rechunk=False)
     return scope

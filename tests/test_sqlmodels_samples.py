@@ -242,3 +242,24 @@ def test_prior_sample_found_a_day_back_or_up_to_31_days_back(cfg, monkeypatch):
     assert prev["B"] == start - dt.timedelta(days=5)
     assert prev["C"] is None                            # beyond the 31 days
     assert "D" not in prev
+
+
+def test_prior_sample_with_a_null_ratio_takes_the_reference_value(cfg):
+    """samples.sql takes the previous ratio with arg_max, which skips nulls: when the last
+    sample before the scope has no ratio_cmd, the value comes from an older sample (here
+    5 days back), and the polars path's one-day look-back must not stop at the null."""
+    start = T0 + dt.timedelta(days=60)
+    ts = [start - dt.timedelta(days=5), start - dt.timedelta(hours=2)] + \
+        [start + dt.timedelta(minutes=k) for k in range(4)]
+    ratio = [2.0, None, 1.0, 1.0, 1.0, 1.0]
+    n = len(ts)
+    df = pl.DataFrame({"unit_id": ["E"] * n, "ts": ts, "v_in": [24.0] * n,
+                       "i_in": [1.0] * n, "p_in": [24.0] * n, "n_in": [1500.0] * n,
+                       "n_out": [1400.0] * n, "ratio_cmd": ratio, "t_out": [None] * n,
+                       "temp": [40.0] * n}, schema=SCHEMA
+                      ).with_columns(day=pl.col("ts").dt.date())
+    ref, got, _ = both(cfg, df, start, start + dt.timedelta(hours=1), context_s=60.0)
+    assert_same(ref, got)
+    first = got.sort("ts").row(0, named=True)
+    assert first["prev_ts"] == start - dt.timedelta(hours=2)
+    assert first["prev_ratio_cmd"] == 2.0
