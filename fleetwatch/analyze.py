@@ -29,10 +29,13 @@ a chunk's per-sample rows (samples.sql's columns) are computed by polars
 (``sqlmodels.samples_frame``: one sort and shifts instead of the file's two window passes,
 about half the CPU; samples.sql stays the reference and tests hold the two equal) and
 registered as the DuckDB view ``samples`` for the other models, then released (one chunk's
-Arrow table at a time); the large derived tables stream from DuckDB into the lake
-(``Lake.write_stream``) a batch at a time, stored month by month (``MONTH_ORDERED``); only
-window-level rows of a batch of units (for the fits) and small aggregates come into
-Python.
+Arrow table at a time; polars builds it a slice of whole units at a time). Each chunk's
+window-level tables (``CHUNK_TABLES``) then leave DuckDB as Parquet parts in the run's temp
+folder (``_park_chunk``) and come back as views over the parts after the last chunk, so
+DuckDB's memory does not fill up chunk after chunk. The large derived tables stream from
+DuckDB into the lake (``Lake.write_stream``) a batch at a time, stored month by month
+(``MONTH_ORDERED``, sorted one month at a time); only window-level rows of a batch of units
+(for the fits) and small aggregates come into Python.
 """
 from __future__ import annotations
 
