@@ -17,13 +17,15 @@ row (see lake.py), and the next writer deletes the rows of a batch that was kill
 so a re-run ends complete, without duplicates and with exact accounting.
 
 Speed: three threads share the work of a file (see "pipeline" below): one reads and parses
-the next chunk, the main thread validates, dedupes and sorts the current one, one writes the
-previous one to the lake. Dedupe waits for the earlier writes, so it sees what a sequential run
-would. Rows whose key the next chunk may continue (the last timestamp of a time-ordered chunk,
-the last unit of a unit-ordered one) are held back to it, so a chunk's lake lookup never has to
-read the previous chunk's file back; a file of one chunk is still one commit. The content hash
-is worked out in a fourth thread while the first chunk is parsed; nothing is written before it
-is known. CSV values of numeric columns are parsed as numbers by the CSV reader; the few rows
+the next chunks, the main thread validates, dedupes and sorts the current one, one writes the
+earlier ones to the lake; each may run up to two chunks ahead of the next. Rows whose key the
+next chunk may continue (the last timestamp of a time-ordered chunk, the last unit of a
+unit-ordered one) are held back to it, so consecutive chunks share no key range: a chunk's
+lake lookup never has to read the previous chunk's file back, nor wait for it to be written
+(dedupe waits only for earlier writes whose key range overlaps its own, so it sees what a
+sequential run would); a file of one chunk is still one commit. The content hash is worked
+out in a fourth thread, started before polars and pyarrow are imported; chunks are validated
+meanwhile, and nothing is written before it is known. CSV values of numeric columns are parsed as numbers by the CSV reader; the few rows
 where that gives null (empty or not a number) or that fail a check are read again as text and
 validated exactly as the text path would (``_recheck_as_text``), so quarantine keeps raw text.
 """
@@ -44,11 +46,12 @@ import sys
 import threading
 import tomllib
 import zlib
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import FIRST_COMPLETED, Future, ThreadPoolExecutor
+from concurrent.futures import wait as wait_futures
 from dataclasses import asdict, dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
-from typing import Callable, Iterator
+from typing import TYPE_CHECKING, Callable, Iterator
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 # Polars' allocator (jemalloc) gives freed memory back to the kernel after 0.5 s by default.
@@ -60,13 +63,35 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 if "polars" not in sys.modules and "_RJEM_MALLOC_CONF" not in os.environ:
     os.environ["_RJEM_MALLOC_CONF"] = "dirty_decay_ms:10000,muzzy_decay_ms:10000"
 
-import polars as pl
-import pyarrow as pa
-import pyarrow.parquet as pq
-
 from .errors import InputError, UsageError
-from .lake import INGEST_BATCH_PREFIX, Lake, sort_order
 from .units import COLUMN_QUANTITY, unit_factor
+
+
+class _LazyModule:
+    """Stands in for a module until its first use, then imports it and puts the module
+    itself in its place among this module's globals.
+
+    polars, pyarrow and the lake (which needs both) take most of a second to import, on one
+    core. ``ingest_files`` starts hashing the first file before it needs them, so that the
+    hash (about a second per GB) runs on the other core meanwhile.
+    """
+
+    def __init__(self, module: str, alias: str):
+        self._module, self._alias = module, alias
+
+    def __getattr__(self, attr: str):
+        mod = importlib.import_module(self._module)
+        globals()[self._alias] = mod
+        return getattr(mod, attr)
+
+
+if TYPE_CHECKING:  # annotations only; the lake is imported on first use at run time
+    from .lake import Lake
+
+pl = _LazyModule("polars", "pl")
+pa = _LazyModule("pyarrow", "pa")
+pq = _LazyModule("pyarrow.parquet", "pq")
+lakemod = _LazyModule("fleetwatch.lake", "lakemod")
 
 __all__ = ["ingest_files", "IngestReport", "FileReport", "Mapping", "load_mapping",
            "discover_files", "KINDS", "DEFAULT_RESETS_WEAR"]
@@ -297,7 +322,8 @@ class _Refuse(Exception):
         self.hint = hint
 
 
-def _file_sha256(path: Path) -> str:
+def _file_sha256(path: Path, stop: threading.Event | None = None) -> str | None:
+    """Hex SHA-256 of the file's bytes; None when ``stop`` is set before the end."""
     h = hashlib.sha256()
     # one buffer for all reads (no fresh pages per read); large reads, as the thread needs
     # the GIL back after each read and each update while the pipeline's threads run
@@ -305,6 +331,8 @@ def _file_sha256(path: Path) -> str:
     view = memoryview(buf)
     with open(path, "rb", buffering=0) as fh:
         while n := fh.readinto(buf):
+            if stop is not None and stop.is_set():
+                return None
             h.update(view[:n])
     return h.hexdigest()
 
@@ -1499,7 +1527,7 @@ def _sorted_by_key(cand: pl.DataFrame, kind: str) -> pl.DataFrame:
     here rather than by the writer: polars' gather is about 3x cheaper than arrow's take,
     and the writer thread is the busiest."""
     keys = cand.select([pl.col(_C + k).alias(k) for k in KEYS[kind]]).to_arrow()
-    order = sort_order(keys, list(KEYS[kind]))
+    order = lakemod.sort_order(keys, list(KEYS[kind]))
     return cand if order is None else cand[pl.from_arrow(order)]
 
 
@@ -1514,27 +1542,67 @@ def _output(cand: pl.DataFrame, kind: str, batch_id: str, lake: Lake) -> pa.Tabl
 
 
 # =========================================================================== pipeline
-# Two cores: while the main thread validates and dedupes chunk n, one thread reads and parses
-# chunk n+1 and another writes chunk n-1 to the lake (deltalake and polars release the GIL).
-# Dedupe of chunk n waits until every earlier write is committed, so it sees exactly what a
-# sequential run would see; the order of commits is the order of submission.
+# Two cores, three stages: one thread reads and parses the next chunks, the main thread
+# validates, dedupes and sorts the current one, one thread writes earlier ones to the lake
+# (deltalake and polars release the GIL). Each stage may run ahead of the next by a bounded
+# number of chunks, so that a short stall in one stage does not leave a core idle, and
+# memory stays bounded. Dedupe of chunk n waits for the earlier writes whose rows may share
+# a key with it (their key ranges overlap, see _KeyBox), so it sees what a sequential run
+# would see; the order of commits is the order of submission.
 
 _DONE = object()
 
+# Parsed chunks the reader may have waiting for the main thread, and data appends (running
+# or queued) the main thread may have waiting for the writer. Two each: with one, every
+# stall of a stage stopped the stage before it, and a core sat idle (measured: ingest used
+# about 1.6 of 2 cores). Each extra chunk in flight costs about 100 MB.
+_READ_AHEAD = 2
+_WRITE_AHEAD = 2
+
+
+@dataclass(frozen=True)
+class _KeyBox:
+    """The smallest (unit_id, ts) ranges holding a set of rows: two sets whose boxes do not
+    overlap share no key (maintenance keys add ``action``; the box still bounds them)."""
+    umin: str
+    umax: str
+    tmin: datetime
+    tmax: datetime
+
+    @staticmethod
+    def of(frame: pl.DataFrame) -> _KeyBox | None:
+        """The box of ``frame``'s ``__unit_id`` and ``__ts`` (accepted rows: no nulls)."""
+        if frame.height == 0:
+            return None
+        u, t = pl.col("__unit_id"), pl.col("__ts")
+        return _KeyBox(*frame.select(u.min().alias("a"), u.max().alias("b"),
+                                     t.min().alias("c"), t.max().alias("d")).row(0))
+
+    def overlaps(self, other: _KeyBox) -> bool:
+        return (self.umin <= other.umax and other.umin <= self.umax
+                and self.tmin <= other.tmax and other.tmin <= self.tmax)
+
+    def union(self, other: _KeyBox | None) -> _KeyBox:
+        if other is None:
+            return self
+        return _KeyBox(min(self.umin, other.umin), max(self.umax, other.umax),
+                       min(self.tmin, other.tmin), max(self.tmax, other.tmax))
+
 
 class _Prefetch:
-    """Runs a chunk generator in a thread, one chunk ahead. Yields (chunk, bytes_done).
+    """Runs a chunk generator in a thread, up to ``ahead`` chunks ahead. Yields (chunk,
+    bytes_done).
 
     Exceptions raised by the generator are re-raised in the consumer at the same point of
     the sequence. ``close()`` stops the thread (it blocks until the thread is gone, so the
     source can then be closed safely).
     """
 
-    def __init__(self, src: _Source):
+    def __init__(self, src: _Source, ahead: int = _READ_AHEAD):
         self.src = src
-        self.q: queue.Queue = queue.Queue(maxsize=1)
+        self.q: queue.Queue = queue.Queue(maxsize=ahead)
         self.stop = threading.Event()
-        self.permit = threading.Semaphore(1)
+        self.permit = threading.Semaphore(ahead)
         self.thread = threading.Thread(target=self._run, name="fleetwatch-read", daemon=True)
         self.thread.start()
 
@@ -1551,8 +1619,8 @@ class _Prefetch:
         it = self.src.chunks()
         try:
             while True:
-                # parse the next chunk only once the consumer took the previous one: at most
-                # one parsed chunk waits, which bounds memory
+                # parse a chunk only while fewer than ``ahead`` parsed chunks wait for the
+                # consumer: that bounds memory
                 while not self.permit.acquire(timeout=0.1):
                     if self.stop.is_set():
                         return
@@ -1584,36 +1652,75 @@ class _Prefetch:
         self.thread.join()
 
 
+class _Dropped(Exception):
+    """An append not run because an earlier one (or the gate) failed."""
+
+
 class _Writer:
-    """One background thread that runs lake appends in submission order."""
+    """One background thread that runs lake appends in submission order.
 
-    def __init__(self, lake: Lake):
+    ``gate`` runs in that thread once, before the first append: it begins the batch (waits
+    for the content hash, checks the ledger, marks the batch pending), so the main thread
+    goes on validating while the hash is worked out. Appends of accepted rows carry their
+    key box; ``wait_for`` waits only for the appends whose box overlaps a given one. Once
+    an append (or the gate) fails, the appends behind it are dropped and the failure is
+    raised in the calling thread by the next ``append``, ``wait_for`` or ``wait``.
+    """
+
+    def __init__(self, lake: Lake, gate: Callable[[], None] | None = None,
+                 ahead: int = _WRITE_AHEAD):
         self.lake = lake
+        self.gate = gate
+        self.ahead = ahead
+        self.failed: BaseException | None = None
         self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="fleetwatch-write")
-        self.pending: list[Future] = []
+        self.pending: list[tuple[Future, _KeyBox | None]] = []
 
-    def append(self, name: str, data) -> None:
-        self.pending.append(self.pool.submit(self.lake.append, name, data))
+    def _run(self, name: str, data) -> None:
+        if self.failed is not None:
+            raise _Dropped
+        try:
+            if self.gate is not None:
+                gate, self.gate = self.gate, None
+                gate()
+            self.lake.append(name, data)
+        except BaseException as exc:
+            self.failed = exc
+            raise
+
+    def _reap(self) -> None:
+        self.pending = [(f, b) for f, b in self.pending if not f.done()]
+        if self.failed is not None:
+            raise self.failed
+
+    def append(self, name: str, data, box: _KeyBox | None = None) -> None:
+        """Queue an append (``box``: key box of accepted rows; None for quarantine rows).
+        Blocks while ``ahead`` appends are already running or queued (bounded memory)."""
+        self._reap()
+        while len(self.pending) >= self.ahead:
+            wait_futures([f for f, _ in self.pending], return_when=FIRST_COMPLETED)
+            self._reap()
+        self.pending.append((self.pool.submit(self._run, name, data), box))
+
+    def wait_for(self, box: _KeyBox) -> None:
+        """Block until every append whose rows may share a key with ``box`` is committed
+        (with the appends before it); re-raise a failure."""
+        last = -1
+        for i, (_, b) in enumerate(self.pending):
+            if b is not None and b.overlaps(box):
+                last = i
+        if last >= 0:
+            wait_futures([f for f, _ in self.pending[:last + 1]])
+        self._reap()
 
     def wait(self) -> None:
         """Block until every submitted append is committed; re-raise the first failure."""
-        pending, self.pending = self.pending, []
-        first: BaseException | None = None
-        for f in pending:
-            try:
-                f.result()
-            except BaseException as exc:
-                first = first or exc
-        if first is not None:
-            raise first
+        wait_futures([f for f, _ in self.pending])
+        self._reap()
 
     def close(self) -> None:
         """Wait for everything submitted (errors are dropped: the caller is failing)."""
-        for f in self.pending:
-            try:
-                f.result()
-            except BaseException:
-                pass
+        wait_futures([f for f, _ in self.pending])
         self.pending = []
         self.pool.shutdown(wait=True)
 
@@ -1648,21 +1755,28 @@ class _AlreadyIngested(Exception):
 
 
 class _Hasher:
-    """SHA-256 of a file's bytes, worked out in a thread while the file's first chunk is
-    parsed (a separate pass before it cost about 5 % of the ingest wall time)."""
+    """SHA-256 of a file's bytes, worked out in a thread while the file's first chunks are
+    parsed and validated (a separate pass before them cost about 5 % of the ingest wall
+    time)."""
 
     def __init__(self, path: Path):
+        self.path = path
         self._sha: str | None = None
         self._error: BaseException | None = None
+        self._stop = threading.Event()
         self._thread = threading.Thread(target=self._run, args=(path,),
                                         name="fleetwatch-hash", daemon=True)
         self._thread.start()
 
     def _run(self, path: Path) -> None:
         try:
-            self._sha = _file_sha256(path)
+            self._sha = _file_sha256(path, self._stop)
         except BaseException as exc:  # handed over to result()
             self._error = exc
+
+    def cancel(self) -> None:
+        """Stop reading the file when nobody will ask for the result."""
+        self._stop.set()
 
     def result(self) -> str:
         """The hex digest; raises what reading the file raised (OSError)."""
@@ -1674,28 +1788,31 @@ class _Hasher:
 
 
 def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | None,
-                done: set, progress: Progress | None) -> FileReport:
+                done: set, progress: Progress | None,
+                hasher: _Hasher | None = None) -> FileReport:
     shown = str(path.resolve())
     fr = FileReport(path=shown, kind=kind)
     started = _now()
-    # Nothing is written before the content hash is known (begin): a file whose content
-    # is in the ledger still leaves the lake untouched, as when it was hashed first.
-    hasher = _Hasher(path)
+    # The batch id does not depend on the content hash, so chunks are validated while the
+    # hash is worked out; nothing is written before it is known (the writer's gate, begin):
+    # a file whose content is in the ledger still leaves the lake untouched.
+    fr.batch_id = f"{lakemod.INGEST_BATCH_PREFIX}{started:%Y%m%dT%H%M%S}-{secrets.token_hex(6)}"
+    hasher = hasher or _Hasher(path)
     src: _Source | None = None
     chunks: _Prefetch | None = None
     writer: _Writer | None = None
     begun = False
 
-    def new_batch_id() -> None:
+    def check_hash() -> None:
         fr.content_sha256 = hasher.result()
         if (fr.content_sha256, kind) in done:
             raise _AlreadyIngested
-        fr.batch_id = f"{INGEST_BATCH_PREFIX}{started:%Y%m%dT%H%M%S}-" \
-                      f"{fr.content_sha256[:12]}-{secrets.token_hex(2)}"
 
     def begin() -> None:
+        """Runs once, in the writer thread before its first append (or at the end when
+        nothing was appended)."""
         nonlocal begun
-        new_batch_id()
+        check_hash()
         lake.begin_batch(fr.batch_id)
         begun = True
 
@@ -1706,11 +1823,12 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
         ingested_at = started
         if progress:
             progress(shown, 0, src.bytes_total)
-        writer = _Writer(lake)
+        writer = _Writer(lake, gate=begin)
         chunks = _Prefetch(src)
         held: tuple[pl.DataFrame, _RawRows] | None = None      # (good rows, their source)
         no_bad: pl.DataFrame | None = None
         deferred: pa.Table | None = None          # accepted rows not yet handed to the writer
+        deferred_box: _KeyBox | None = None
         for item, bytes_done in _with_end(chunks):
             chunk = None if item is None else item[0]
             if chunk is None:           # the end: rows held back from the last chunk
@@ -1722,8 +1840,8 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                 if chunk.height == 0:
                     continue
                 if deferred is not None:    # more rows follow: the last chunk's rows can go
-                    writer.append(kind, deferred)
-                    deferred = None
+                    writer.append(kind, deferred, deferred_box)
+                    deferred = deferred_box = None
                 retext = item[1]
                 fr.rows_read += chunk.height
                 good, bad = _validate(chunk, plan, settings, src.fmt)
@@ -1742,28 +1860,37 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                     if tail is not None:
                         held = (tail, raw.since(tail["_line"].min()))
             cand, conflicts, dups = _dedupe_in_chunk(good, plan)
-            # the rows to append are sorted and converted while the previous chunk is still
-            # being written (the writer thread is the busiest); after the wait, only the lake
-            # lookup is left, and it rarely finds anything to take out again
-            out = None
+            # the rows to append are sorted and converted while earlier chunks are still
+            # being written (the writer thread is the busiest); only the lake lookup needs
+            # the earlier writes, and it rarely finds anything to take out again
+            out = box = None
             if cand.height:
                 cand = _sorted_by_key(cand, kind)
-            if not begun:
-                begin()         # the first chunk: waits for the content hash if need be
-            if cand.height:
                 out = _output(cand, kind, fr.batch_id, lake)
-            writer.wait()       # earlier chunks are in the lake before dedupe looks there
+                box = _KeyBox.of(cand)
+                if deferred_box is not None and deferred_box.overlaps(box):
+                    # rows not yet handed over may share a key with these (input in no
+                    # usable order): commit them first
+                    writer.append(kind, deferred, deferred_box)
+                    deferred = deferred_box = None
+            # earlier writes that may hold these keys are in the lake before dedupe looks
+            # there; for rows in time order (or unit order) the held-back tail makes the
+            # boxes of consecutive chunks disjoint, and nothing is waited for
+            if box is not None:
+                writer.wait_for(box)
             in_lake, more, more_dups = _dedupe_against_lake(cand, plan, lake)
             if in_lake is not None:
                 keep = ~in_lake
                 cand = cand.filter(keep)
                 out = out.filter(keep.to_arrow())
+                box = _KeyBox.of(cand)
             bad = _with_conflicts(bad, conflicts + more, plan, raw, src.fmt)
             fr.duplicates += dups + more_dups
             if cand.height:
                 # written once the next chunk arrives, or at the end together with the rows
                 # held back (one commit for a file of one chunk)
                 deferred = out if deferred is None else pa.concat_tables([deferred, out])
+                deferred_box = box.union(deferred_box)
                 fr.accepted += cand.height
             if bad.height:
                 q = bad.select(
@@ -1781,11 +1908,12 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
             # drop this chunk's frames now: the next chunk is parsed while they would still
             # be referenced, and memory is bounded by the chunks alive at once
             chunk = item = retext = raw = good = bad = cand = out = q = keep = None
+        if deferred is not None:
+            writer.append(kind, deferred, deferred_box)
+            deferred = None
+        writer.wait()
         if not begun:
             begin()
-        if deferred is not None:
-            writer.append(kind, deferred)
-        writer.wait()
         assert fr.rows_read == fr.accepted + fr.quarantined + fr.duplicates
         notes = list(src.notes)
         if fr.quarantined:
@@ -1799,13 +1927,13 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
             progress(shown, src.bytes_total, src.bytes_total)
         return fr
     except _Refuse as exc:
-        _stop(chunks, writer)
+        _stop(chunks, writer)       # no write may still be running: begun is final now
         chunks = writer = None
         if begun:
             lake.rollback_batch(fr.batch_id)
         else:
             try:
-                new_batch_id()
+                check_hash()
             except _AlreadyIngested:
                 return _skipped(fr)
             except OSError as exc2:
@@ -1820,7 +1948,9 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
         return fr
     except _AlreadyIngested:
         return _skipped(fr)
-    except OSError as exc:
+    except OSError:
+        _stop(chunks, writer)
+        chunks = writer = None
         if begun:
             raise
         try:
@@ -1836,7 +1966,7 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
 
 
 def _skipped(fr: FileReport) -> FileReport:
-    fr.status = "skipped"
+    fr.status, fr.batch_id = "skipped", None
     fr.rows_read = fr.accepted = fr.quarantined = fr.duplicates = 0
     fr.rules = {}
     fr.message = "already ingested (same content hash); nothing to do"
@@ -1845,6 +1975,7 @@ def _skipped(fr: FileReport) -> FileReport:
 
 def _unreadable(fr: FileReport, exc: OSError) -> FileReport:
     fr.status, fr.message = "refused", f"{fr.path}: cannot read ({exc.strerror or exc})"
+    fr.batch_id = None
     fr.rows_read = fr.accepted = fr.quarantined = fr.duplicates = 0
     fr.rules = {}
     return fr
@@ -1926,17 +2057,25 @@ def ingest_files(paths, settings, mapping: str | os.PathLike | Mapping | None = 
     for m in missing:
         report.files.append(FileReport(path=m, kind=kind, status="refused",
                                        message=f"{m}: no such file, folder or matching glob"))
-    lake = Lake.from_settings(settings)
-    if files:
-        _warm_up()
-        with lake.writer("ingest"):
-            undone = lake.recover()
-            if undone:
-                report.notes.append("removed the rows of batches interrupted earlier (they "
-                                    "had no ledger row): " + ", ".join(undone))
-            done = _done_hashes(lake)
-            for p in files:
-                report.files.append(_ingest_one(p, kind, lake, settings, mp, done, progress))
+    # the first file's hash starts before polars, pyarrow and the lake are imported (they
+    # take most of a second on one core): it runs on the other core meanwhile
+    early = _Hasher(files[0]) if files else None
+    try:
+        lake = lakemod.Lake.from_settings(settings)
+        if files:
+            _warm_up()
+            with lake.writer("ingest"):
+                undone = lake.recover()
+                if undone:
+                    report.notes.append("removed the rows of batches interrupted earlier "
+                                        "(they had no ledger row): " + ", ".join(undone))
+                done = _done_hashes(lake)
+                for i, p in enumerate(files):
+                    report.files.append(_ingest_one(p, kind, lake, settings, mp, done,
+                                                    progress, early if i == 0 else None))
+    finally:
+        if early is not None:
+            early.cancel()      # e.g. the lake is locked: stop reading the file
     for f in report.files:
         if f.status == "refused":
             report.errors.append(f.message)

@@ -227,9 +227,9 @@ def test_content_hash_while_parsing_writes_nothing_before_it_is_known(tmp_path, 
     before = lake.versions()
     slow = ing._file_sha256
 
-    def late(p):
+    def late(p, stop=None):
         time.sleep(0.5)
-        return slow(p)
+        return slow(p, stop)
 
     monkeypatch.setattr(ing, "_file_sha256", late)
     copy = tmp_path / "in" / "renamed.csv"
@@ -240,8 +240,10 @@ def test_content_hash_while_parsing_writes_nothing_before_it_is_known(tmp_path, 
     assert f.content_sha256 == first.content_sha256
     assert lake.versions() == before and not lake.pending_batches()
     # a file that cannot be read is refused with the reason, without a ledger row
-    monkeypatch.setattr(ing, "_file_sha256",
-                        lambda p: (_ for _ in ()).throw(PermissionError(13, "Permission denied")))
+    def unreadable(p, stop=None):
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr(ing, "_file_sha256", unreadable)
     other = tmp_path / "in" / "other.csv"
     other.write_text(path.read_text().replace("U1", "U9"))
     f = ingest_files([other], settings, mapping=mapping).files[0]
@@ -658,3 +660,65 @@ def test_csv_blocks_end_outside_quotes_and_lose_nothing(tmp_path):
     assert b"".join(blocks) == body
     for b in blocks:
         assert b.endswith(b"\n") and b.count(b'"') % 2 == 0
+
+
+def test_writer_waits_only_for_appends_that_may_share_a_key(tmp_path):
+    # dedupe of a chunk waits for the earlier appends whose key box overlaps its own (they
+    # may hold its keys) and not for the others, so the main thread keeps validating
+    import threading
+
+    from fleetwatch.ingest import _KeyBox, _Writer
+
+    t0 = datetime(2024, 5, 1, tzinfo=UTC)
+    early = _KeyBox("U01", "U09", t0, t0 + timedelta(hours=1))
+    late = _KeyBox("U01", "U09", t0 + timedelta(hours=2), t0 + timedelta(hours=3))
+    other_units = _KeyBox("U10", "U19", t0, t0 + timedelta(hours=3))
+    assert early.overlaps(early.union(late)) and not early.overlaps(late)
+    assert not other_units.overlaps(early) and other_units.overlaps(
+        _KeyBox("U05", "U12", t0 + timedelta(hours=3), t0 + timedelta(hours=4)))
+
+    release, gated, done = threading.Event(), [], []
+
+    class SlowLake:
+        def append(self, name, data):
+            release.wait(10)
+            done.append(data)
+
+    w = _Writer(SlowLake(), gate=lambda: gated.append(1))
+    try:
+        w.append("telemetry", "a", early)
+        w.wait_for(late)                        # disjoint: returns at once
+        w.wait_for(other_units)
+        assert done == []
+        threading.Timer(0.2, release.set).start()
+        w.wait_for(early.union(late))           # overlaps: waits for the commit
+        assert done == ["a"] and gated == [1]   # the gate ran once, before the append
+    finally:
+        release.set()
+        w.close()
+
+
+def test_writer_drops_appends_after_a_failure_and_raises_it(tmp_path):
+    from fleetwatch.errors import LakeError
+    from fleetwatch.ingest import _Writer
+
+    done = []
+
+    class FailingLake:
+        def append(self, name, data):
+            if data == "b":
+                raise LakeError("disk full (simulated)")
+            done.append(data)
+
+    w = _Writer(FailingLake())
+    try:
+        for d in ("a", "b", "c"):
+            try:
+                w.append("quarantine", d)
+            except LakeError:
+                break
+        with pytest.raises(LakeError, match="disk full"):
+            w.wait()
+        assert done == ["a"]                    # "c" was never written
+    finally:
+        w.close()
