@@ -304,7 +304,7 @@ def test_choosing_a_unit_prefetches_its_unit_page(app, project, monkeypatch):
     at.switch_page(UNIT_PAGE).run()
     _ok(at)
     assert calls == [unit]                        # served from the prefetched cache
-    assert len(at.get("vega_lite_chart")) == 4
+    assert len(at.get("vega_lite_chart")) == 1
 
 
 def test_creep_week_control_picks_the_creep_chart_week(app, project):
@@ -339,43 +339,86 @@ def _x_axes(panel: dict) -> list:
     return out + [a for sub in panel.get("layer", []) for a in _x_axes(sub)]
 
 
-def test_unit_charts_are_light_canvases_with_a_text_alternative(app, project):
-    """The browser's share of the Unit page: canvas, no per-mark ARIA descriptions, and the
-    stacks' panels on one shared time scale with the labels only under the bottom one;
-    screen readers get the chart titles through Streamlit's alt."""
+def _x_scales(panel: dict) -> list:
+    """The x scale settings of a panel and its layers (None: no x encoding)."""
+    out = [panel["encoding"]["x"].get("scale")] if "x" in panel.get("encoding", {}) else []
+    return out + [a for sub in panel.get("layer", []) for a in _x_scales(sub)]
+
+
+def test_unit_charts_are_one_light_canvas_with_a_text_alternative(app, project):
+    """The browser's share of the Unit page: one view for every chart (one Vega setup),
+    on a canvas, no per-mark ARIA descriptions; each panel with its own scales and legends
+    (status colours stay with their words), the time panels on the chosen range, their
+    time labels only under the bottom panel of each section; screen readers get the chart
+    titles through Streamlit's alt."""
     _, truth = project
     unit = next(u for u, c in truth.conditions.items() if c == "wear")
     at = _open_unit(app, unit)
     charts = at.get("vega_lite_chart")
-    assert len(charts) == 4
-    for c in charts:
-        spec = json.loads(c.proto.spec)
-        assert spec["usermeta"]["embedOptions"]["renderer"] == "canvas"
-        assert spec["config"]["aria"] is False
-        assert c.proto.alt and c.proto.alt == dash.chart_alt(spec)
-        assert all(t in c.proto.alt for t in _titles(spec))
-    stacks = [json.loads(c.proto.spec) for c in charts]
-    stacks = [s for s in stacks if "vconcat" in s]
-    assert len(stacks) == 2                      # operation (5 panels), health (2)
-    for stack in stacks:
-        assert stack["resolve"]["scale"]["x"] == "shared"
-        *upper, bottom = stack["vconcat"]
+    assert len(charts) == 1
+    spec = json.loads(charts[0].proto.spec)
+    assert spec["usermeta"]["embedOptions"]["renderer"] == "canvas"
+    assert spec["config"]["aria"] is False
+    assert charts[0].proto.alt and charts[0].proto.alt == dash.chart_alt(spec)
+    assert all(t in charts[0].proto.alt for t in _titles(spec))
+    for channel in ("x", "y", "color", "shape", "strokeDash"):
+        assert spec["resolve"]["scale"][channel] == "independent"
+    panels = spec["vconcat"]
+    titles = [" ".join(_titles(p)) for p in panels]
+    assert "steady slip at load" in titles[0] and "creep vs load" in titles[1]
+    assert all("vconcat" not in p and "hconcat" not in p for p in panels)  # all page-wide
+    start, end = _shown_range(at)
+    domain = dash.time_domain(start, end)
+    assert domain[0] == {"year": start.year, "month": start.month, "date": start.day,
+                         "utc": True}
+    sections = [panels[2:7], panels[7:]]   # operation (5 panels), health (2)
+    for section in sections:
+        *upper, bottom = section
+        for panel in section:
+            scales = [sc for sc in _x_scales(panel) if sc is not None]
+            assert scales and all(sc["domain"] == domain for sc in scales)
         for panel in upper:
             axes = _x_axes(panel)
             assert axes and all(a["labels"] is False and a["title"] is None for a in axes)
         assert all(not a or a.get("labels", True) for a in _x_axes(bottom))
-    assert "time (UTC)" in _text(stacks[0]["vconcat"][-1])
+    assert "time (UTC)" in _text(sections[0][-1])
+    assert "Temperature" in titles[6] and "Anomaly score" in titles[-1]
+
+
+def test_page_spec_keeps_panels_apart_and_skips_missing_charts():
+    """page_spec: stacks are lifted into one stack of page-wide panels, their datasets
+    kept; nothing to draw gives None."""
+    panel = {"mark": "line", "data": {"name": "a"}, "encoding": {}, "config": {"aria": False},
+             "usermeta": {"embedOptions": {"renderer": "canvas"}}, "datasets": {"a": [1]}}
+    stack = {"config": {"aria": False}, "vconcat": [{"mark": "point"}, {"mark": "tick"}],
+             "resolve": {"scale": {"x": "shared"}}, "datasets": {"b": [2]}}
+    out = dash.page_spec([panel, None, stack])
+    assert [p["mark"] for p in out["vconcat"]] == ["line", "point", "tick"]
+    assert out["datasets"] == {"a": [1], "b": [2]}
+    assert out["usermeta"]["embedOptions"]["renderer"] == "canvas"
+    assert out["resolve"]["scale"]["x"] == "independent"
+    # page-wide panels fit the page, their axes included
+    assert out["autosize"] == {"type": "fit-x", "contains": "padding"}
+    assert "datasets" not in out["vconcat"][0] and "config" not in out["vconcat"][0]
+    assert dash.page_spec([None, None]) is None
+    # a single layered chart keeps its own resolve (with_markers keeps the markers' colour
+    # scale apart from the chart's); a lifted stack's shared x does not reach the panels
+    marked = dash.with_markers({"mark": "point", "data": {"name": "a"}, "encoding": {}},
+                               {"mark": "rule", "encoding": {}})
+    out = dash.page_spec([stack, marked])
+    assert out["vconcat"][2]["resolve"]["scale"]["color"] == "independent"
+    assert all("resolve" not in p for p in out["vconcat"][:2])
 
 
 def test_unit_time_range_changes_what_is_drawn(app, project):
     _, truth = project
     unit = next(u for u, c in truth.conditions.items() if c == "stall")
     at = _open_unit(app, unit)
-    at.radio(key="unit_range_preset").set_value("All").run()
+    at.selectbox(key="unit_range_preset").set_value("All").run()
     health_all = _table(_ok(at), "reasons")
     # the stall alert (days 45-57) and its clearing are both in the full range
     assert any("alert" in r["status"] for r in health_all)
-    at.radio(key="unit_range_preset").set_value("Custom").run()
+    at.selectbox(key="unit_range_preset").set_value("Custom").run()
     at.date_input(key="unit_range").set_value(
         (truth.start, truth.start + dt.timedelta(days=20))).run()
     health_early = _table(_ok(at), "reasons")
@@ -386,7 +429,7 @@ def test_unit_markers_include_events_and_maintenance(app, project):
     _, truth = project
     unit = next(u for u, c in truth.conditions.items() if c == "healthy")  # wear reset day 10
     at = _open_unit(app, unit)
-    at.radio(key="unit_range_preset").set_value("All").run()
+    at.selectbox(key="unit_range_preset").set_value("All").run()
     markers = _table(_ok(at), "source")
     assert "maintenance" in {r["source"] for r in markers}
     assert any("wear reset" in (r["detail"] or "") for r in markers)
@@ -555,7 +598,7 @@ def test_every_page_on_a_simulated_fleet(tmp_path_factory, monkeypatch):
     at.query_params["unit"] = slippy
     at.switch_page(UNIT_PAGE).run()
     _ok(at)
-    at.radio(key="unit_range_preset").set_value("All").run()
+    at.selectbox(key="unit_range_preset").set_value("All").run()
     _ok(at)
     titles = " | ".join(t for s in _specs(at) for t in _titles(s))
     for want in ("steady slip at load", "creep vs load", "Commanded against actual ratio",

@@ -71,7 +71,7 @@ def tables(parts: list[tuple[str, Any, str | None]], key: str) -> None:
             st.dataframe(df, hide_index=True, placeholder="–", key=f"{key}_table_{i}")
 
 
-#: The Unit page's time range when it opens (its radio's default).
+#: The Unit page's time range when it opens (its select box's default).
 DEFAULT_RANGE = list(dash.RANGE_PRESETS)[1]
 
 
@@ -94,6 +94,11 @@ def _warm_unit(settings, unit: str) -> None:
                     limit=settings.slip_limit, threshold=settings.watch_score)
         dash.cached(dash.creep_spec, settings, unit_id=unit, week=week,
                     timezone=settings.plant_timezone)
+        # the page's first call (its unit picker's list), last: the charts' data matter
+        # more when the click comes early
+        from fleetwatch import views
+
+        dash.cached(views.known_units, settings)
     except Exception:  # noqa: BLE001 - only a head start; the page reports its errors
         pass
 

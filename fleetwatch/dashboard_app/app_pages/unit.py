@@ -36,9 +36,11 @@ span = ui.load(dash.unit_span, settings, unit_id=unit)
 if span is None:
     ui.no_data(f"analysed days for {unit}")
     st.stop()
-preset = c2.radio("Time range", list(dash.RANGE_PRESETS),
-                  index=list(dash.RANGE_PRESETS).index(ui.DEFAULT_RANGE), horizontal=True,
-                  key="unit_range_preset")
+# a select box, not radio buttons: the Fleet page has loaded its browser code already,
+# where radio buttons would fetch two more code chunks on the way to this page's charts
+preset = c2.selectbox("Time range", list(dash.RANGE_PRESETS),
+                      index=list(dash.RANGE_PRESETS).index(ui.DEFAULT_RANGE),
+                      key="unit_range_preset")
 start, end = dash.preset_range(preset, *span)
 if preset == "Custom":
     rng = c3.date_input("From / to (UTC days)", value=(start, end), min_value=span[0],
@@ -47,7 +49,7 @@ if preset == "Custom":
 else:
     c3.caption(f"Showing {start} to {end} (UTC days); data from {span[0]} to {span[1]}.")
 week = c4.selectbox("Creep week", dash.weeks_in(start, end), format_func=str,
-                    key="unit_creep_week", help="The week the creep chart (Wear) compares "
+                    key="unit_creep_week", help="The week the creep chart compares "
                     "against the unit's reference weeks.")
 
 # Everything the page draws is loaded here, before any of it is drawn: the browser then
@@ -73,21 +75,20 @@ if now.height:
     st.html(f"<div>{line}</div>" + (f'<ul style="margin:0.3rem 0 0">{reasons}</ul>'
                                      if reasons else ""))
 
-st.subheader("Wear")
-w1, w2 = st.columns(2)
-with w1:
-    ui.chart(view.charts["slip"], empty="No steady slip at rated load in this range.")
-with w2:
-    ui.chart(creep, empty=f"No steady windows with load in {week}.")
+# Every chart of the page in one view (wear: slip and creep; operation: ratio, power,
+# efficiency, temperature; health: status by day, anomaly scores), each panel with its own
+# scales, the time panels on the chosen range: the browser sets up one chart instead of four
+# (dash.page_spec). What has no data is left out and said below.
+st.subheader("Wear, operation and health")
+missing = [text for spec, text in (
+    (view.charts["slip"], "No steady slip at rated load in this range."),
+    (creep, f"No steady windows with load in {week}.")) if spec is None] + view.missing
+ui.chart(dash.page_spec([view.charts["slip"], creep, view.charts["operation"],
+                         view.charts["health"]]),
+         empty="Nothing to chart in this range.")
+if missing:
+    st.caption(" ".join(missing))
 
-# one stack per section (time axes aligned, markers on each time-axis panel): the browser
-# sets up one chart per stack instead of one per panel. Stacks keep their panels' width,
-# so they get the page's full width, not a column.
-st.subheader("Operation")
-ui.chart(view.charts["operation"], empty="No steady-state operation data in this range.")
-
-st.subheader("Health")
-ui.chart(view.charts["health"], empty="No health results or anomaly scores in this range.")
 # short tables as static HTML in one element (an interactive grid costs the browser about
 # four times as much); a table too long for that stays a grid
 tables = [("Status changes and their reasons", view.health_changes, "status")]
@@ -95,8 +96,6 @@ if view.top_scores.height:
     tables.append(("Highest anomaly scores and the features that drove them",
                    view.top_scores, None))
 ui.tables(tables, key="unit")
-if view.missing:
-    st.caption(" ".join(view.missing))
 
 st.subheader("Events and maintenance")
 if view.markers.is_empty():
