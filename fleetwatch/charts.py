@@ -335,7 +335,9 @@ def creep_chart(cmp: CreepComparison, title: str | None = None
     ratio = cmp.b_ratio
     sub = (f"compliance b this week = {ratio:.2f} x reference" if ratio is not None
            else "no reference fit to compare")
-    return alt.layer(*layers).properties(
+    # the dash has no legend of its own (colour and shape say the period): independent,
+    # so the merged period legend is not asked to be both shown and hidden
+    return alt.layer(*layers).resolve_legend(strokeDash="independent").properties(
         title=alt.TitleParams(title, subtitle=sub), width=WIDTH, height=200)
 
 

@@ -21,7 +21,7 @@ PAGES_DIR = Path(__file__).resolve().parent / "app_pages"
 
 
 def main() -> None:
-    st.set_page_config(page_title="fleetwatch", page_icon="◎", layout="wide")
+    st.set_page_config(page_title="fleetwatch", page_icon="⚙️", layout="wide")
     pages = [
         st.Page(PAGES_DIR / "fleet.py", title="Fleet", url_path="fleet", default=True),
         st.Page(PAGES_DIR / "unit.py", title="Unit", url_path="unit"),
