@@ -8,8 +8,8 @@ that stage is installed.
 
 Incremental by default. A small state file in the lake (``_fleetwatch/_analyze_state.json``)
 records what the derived tables reflect: telemetry rows per UTC day, each unit's first
-sample, the wear resets and a fingerprint of the analyze settings, the SQL files and
-fits.py. The next run compares the rows per day (cheap: ``day`` is the partition column)
+sample, the wear resets and a fingerprint of the analyze settings, the SQL files, fits.py,
+sqlmodels.py and this file. The next run compares the rows per day (cheap: ``day`` is the partition column)
 and recomputes from the day before the earliest changed day (or before the unit's previous
 sample, so a pause that ends in new data is whole; or the start of a reference period that
 the new data falls in, because everything after it leans on that reference) up to the end
@@ -177,8 +177,9 @@ def _has_view(con, name: str) -> bool:
 
 
 def fingerprint(settings: Any) -> str:
-    """Hash of the analyze settings, the SQL model files, fits.py and sqlmodels.py (its
-    polars samples path replaces samples.sql in analyze): a change forces a rebuild."""
+    """Hash of the analyze settings, the SQL model files, fits.py, sqlmodels.py (its
+    polars samples path replaces samples.sql in analyze) and this file (chunking, loads,
+    what is kept between runs): a change forces a rebuild."""
     h = hashlib.sha256()
     for name in ANALYZE_SETTINGS:
         h.update(f"{name}={settings[name]!r};".encode())
@@ -186,6 +187,7 @@ def fingerprint(settings: Any) -> str:
         h.update(m.sql.encode())
     h.update(Path(fits.__file__).read_bytes())
     h.update(Path(sqlmodels.__file__).read_bytes())
+    h.update(Path(__file__).read_bytes())
     h.update(f"partitioned={sorted(PARTITIONED.items())!r}".encode())
     return h.hexdigest()[:16]
 
@@ -461,6 +463,11 @@ def run_analysis(con, settings: Any, plan: AnalysisPlan,
         shutil.rmtree(tmp, ignore_errors=True)
 
 
+def _sql_text(value: Any) -> str:
+    """``value`` as a SQL string literal (a folder name may hold a quote)."""
+    return "'" + str(value).replace("'", "''") + "'"
+
+
 #: The per-chunk SQL models (after samples and motor_sums), in run order.
 CHUNK_TABLES = ("windows", "window_power", "events", "day_stats")
 
@@ -477,7 +484,7 @@ def _park_chunk(con, parts: Path, k: int) -> None:
         d.mkdir(parents=True, exist_ok=True)
         order = ", ".join(TABLES[name].key) if name in TABLES else "unit_id"
         con.execute(f"COPY (SELECT * FROM {name} ORDER BY {order}) "
-                    f"TO '{d / f'part-{k:05d}.parquet'}' (FORMAT parquet)")
+                    f"TO {_sql_text(d / f'part-{k:05d}.parquet')} (FORMAT parquet)")
         con.execute(f"DROP TABLE {name}")
 
 
@@ -627,7 +634,7 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
          ) -> dict[str, int]:
     con.execute("SET TimeZone = 'UTC'")
     con.execute(f"SET memory_limit = '{DUCKDB_MEMORY_LIMIT}'")
-    con.execute(f"SET temp_directory = '{Path(tmp) / 'spill'}'")
+    con.execute(f"SET temp_directory = {_sql_text(Path(tmp) / 'spill')}")
     con.execute("SET preserve_insertion_order = false")
 
     chunks = _chunks(plan)
@@ -703,7 +710,7 @@ def _run(con, prev, settings, plan: AnalysisPlan, write, progress, models, tmp
     # the chunks' tables, from their Parquet parts, under the same names
     for name in CHUNK_TABLES:
         con.execute(f"CREATE VIEW {name} AS SELECT * FROM "
-                    f"read_parquet('{parts / name / '*.parquet'}')")
+                    f"read_parquet({_sql_text(parts / name / '*.parquet')})")
 
     # the day sums the next run may need: the days from the Monday a week before the last
     # day's (a run that starts inside a week adds them up with its new days)

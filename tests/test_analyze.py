@@ -483,3 +483,15 @@ def test_chunk_tables_keep_their_column_types_through_parquet_parts(fleet, monke
     assert set(seen) == set(an.CHUNK_TABLES)
     for name, (before, after) in seen.items():
         assert before == after, name
+
+
+def test_analyze_works_in_a_temp_folder_whose_name_has_a_quote(fleet, tmp_path, monkeypatch):
+    """The run's temp folder (spill files, chunk parts) goes into SQL text: a quote in its
+    path must not break the statement."""
+    import tempfile
+    odd = tmp_path / "it's here"
+    odd.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(odd))
+    rep = analyze(fleet.settings, full=True)
+    assert rep.full and rep.tables["windows"] > 0
+    assert list(odd.iterdir()) == []                    # the run cleaned up after itself
