@@ -63,6 +63,33 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 if "polars" not in sys.modules and "_RJEM_MALLOC_CONF" not in os.environ:
     os.environ["_RJEM_MALLOC_CONF"] = "dirty_decay_ms:10000,muzzy_decay_ms:10000"
 
+
+def _glibc_keep_large_blocks() -> bool:
+    """Let glibc's malloc (the Delta writer's allocator; polars and pyarrow have their own)
+    serve blocks up to 512 MB from its heap and keep up to 1 GB freed at the heap's top,
+    instead of mapping every large block fresh and unmapping it when freed: each chunk's
+    write faulted its buffers in again. Measured at 20 M rows: kernel time 4.1-4.5 s ->
+    3.1-3.2 s, ingest wall about 0.5 s less, peak RSS about 130 MB more. Like the jemalloc
+    setting above it applies to the whole process and is set when this module is imported;
+    Linux with glibc only; MALLOC_MMAP_THRESHOLD_ / MALLOC_TRIM_THRESHOLD_ set by the user
+    win. Returns whether it was applied."""
+    if not sys.platform.startswith("linux") or any(
+            k in os.environ for k in ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_")):
+        return False
+    try:
+        if not os.confstr("CS_GNU_LIBC_VERSION"):
+            return False
+        import ctypes
+        libc = ctypes.CDLL("libc.so.6")
+        # mallopt(M_MMAP_THRESHOLD = -3, ...), mallopt(M_TRIM_THRESHOLD = -1, ...)
+        return bool(libc.mallopt(-3, 512 * 1024 * 1024)) and \
+            bool(libc.mallopt(-1, 1024 * 1024 * 1024))
+    except (OSError, ValueError, AttributeError):
+        return False
+
+
+_GLIBC_TUNED = _glibc_keep_large_blocks()
+
 from .errors import InputError, UsageError
 from .units import COLUMN_QUANTITY, unit_factor
 

@@ -722,3 +722,20 @@ def test_writer_drops_appends_after_a_failure_and_raises_it(tmp_path):
         assert done == ["a"]                    # "c" was never written
     finally:
         w.close()
+
+
+def test_glibc_malloc_setting_applies_on_glibc_and_yields_to_the_users(monkeypatch):
+    import os
+    import sys
+
+    from fleetwatch import ingest as ing
+
+    monkeypatch.setenv("MALLOC_TRIM_THRESHOLD_", "131072")
+    assert ing._glibc_keep_large_blocks() is False          # the user's setting wins
+    monkeypatch.delenv("MALLOC_TRIM_THRESHOLD_")
+    monkeypatch.delenv("MALLOC_MMAP_THRESHOLD_", raising=False)
+    try:
+        glibc = sys.platform.startswith("linux") and bool(os.confstr("CS_GNU_LIBC_VERSION"))
+    except (ValueError, OSError):
+        glibc = False
+    assert ing._glibc_keep_large_blocks() is glibc
