@@ -69,6 +69,9 @@ def both(cfg, df: pl.DataFrame, from_ts, to_ts, context_s=86400.0):
     run_samples(con, cfg, rt, into="samples_pl")
     got = pl.from_arrow(con.sql("SELECT * FROM samples_pl ORDER BY unit_id, ts")
                         .to_arrow_table())
+    # the public frame function gives the same rows as the registered view
+    frame = sqlmodels.samples_frame(con, cfg, rt).sort("unit_id", "ts")
+    assert frame.equals(got), "samples_frame differs from run_samples"
     return ref, got, con
 
 
