@@ -39,6 +39,7 @@ import gzip
 import hashlib
 import importlib
 import json
+import math
 import os
 import queue
 import secrets
@@ -642,7 +643,7 @@ class _CsvSource(_Source):
                          empty_string_is_null=False, raise_if_empty=False, infer_schema=False)
         if df.height == 0:
             return df.with_columns(_line=pl.lit(None, pl.Int64), _malformed=pl.lit(False))
-        physical = data.count(b"\n") + (0 if data.endswith(b"\n") else 1)
+        physical = _count_newlines(data) + (0 if data.endswith(b"\n") else 1)
         if lines is not None:
             if physical != df.height:
                 raise RuntimeError("lines read again as text did not give one row each")
@@ -703,7 +704,7 @@ class _CsvSource(_Source):
         try:
             for block in self._blocks():
                 first_line = self.next_line
-                n_newlines = block.count(b"\n")
+                n_newlines = _count_newlines(block)
                 self.next_line += n_newlines
                 data = self.decode(block, first_line)
                 del block
@@ -749,6 +750,15 @@ def _extras_filled(df: pl.DataFrame, strip: bool) -> pl.Series:
     if strip:
         cols = [c.str.strip_chars() for c in cols]
     return df.select(pl.any_horizontal([c != "" for c in cols])).to_series()
+
+
+def _count_newlines(data: bytes) -> int:
+    """``data.count(b"\\n")``, about four times faster: numpy compares a slice at a time
+    (kept small, so that the comparison's result stays in cache)."""
+    import numpy as np
+    a = np.frombuffer(data, np.uint8)
+    step = 1 << 18
+    return sum(int(np.count_nonzero(a[i:i + step] == 10)) for i in range(0, len(a), step))
 
 
 class _Retext:
@@ -1184,6 +1194,11 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
     """
     kind, S = plan.kind, plan.sources
     checks: list[tuple[pl.Expr, str, str | None, pl.Expr]] = []
+    groups: list[str] = []      # what each check is about (see _checks_that_may_fail)
+
+    def tag(group: str) -> None:
+        groups.extend([group] * (len(checks) - len(groups)))
+
     uid_src, ts_src = S["unit_id"], S["ts"]
 
     df = df.with_columns(__unit_id=pl.col(uid_src).cast(pl.String, strict=False)
@@ -1191,9 +1206,11 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
     df = _timestamp(df, ts_src, plan)
     checks.append((pl.col("_malformed"), "malformed_row", None,
                    pl.lit("the row has more fields than the header (or is not a JSON object)")))
+    tag("malformed")
     uid = pl.col("__unit_id")
     checks.append((uid.is_null() | (uid == ""), "empty_unit_id", uid_src,
                    pl.lit(f"unit_id ({uid_src}) is empty")))
+    tag("unit_id")
     raw_ts = _fmt(pl.col(ts_src))
     checks.append((~pl.col("__ts_present"), "missing_value", ts_src,
                    pl.lit(f"ts ({ts_src}) is empty")))
@@ -1205,18 +1222,10 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
                         "back); log with a UTC offset")):
         checks.append((pl.col("__ts_rule") == rule, rule, ts_src,
                        pl.concat_str([pl.lit(f"ts ({ts_src}) '"), raw_ts, pl.lit(f"' {text}")])))
+    tag("ts")
 
     if kind == "telemetry":
-        bounds = {
-            "v_in": (-settings.v_max_v, settings.v_max_v, "V"),
-            "i_in": (-settings.i_max_a, settings.i_max_a, "A"),
-            "p_in": (-settings.p_max_w, settings.p_max_w, "W"),
-            "n_in": (0.0, settings.n_max_rpm, "rpm"),
-            "n_out": (0.0, settings.n_max_rpm, "rpm"),
-            "ratio_cmd": (settings.ratio_min, settings.ratio_max, "-"),
-            "t_out": (-settings.t_out_max_nm, settings.t_out_max_nm, "N*m"),
-            "temp": (settings.temp_min_c, settings.temp_max_c, "degC"),
-        }
+        bounds = _numeric_bounds(settings)
         required = {"n_in", "n_out", "ratio_cmd"}
         if "p_in" not in S:
             required |= {"v_in", "i_in"}
@@ -1275,6 +1284,7 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
                            pl.concat_str([pl.lit(f"{canon} ({src}) = "),
                                           v.round(6).cast(pl.String),
                                           pl.lit((f" {unit} " if unit != "-" else " ") + what)])))
+            tag(canon)
         if "p_in" not in S:
             v = pl.col("__p_in")
             checks.append((v.is_finite() & (v.abs() > settings.p_max_w), "out_of_range",
@@ -1284,6 +1294,7 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
                                                             " W (p_max_w)")])))
             checks.append((v.is_not_null() & ~v.is_finite(), "not_finite", S["v_in"],
                            pl.lit("p_in = v_in*i_in is not a finite number")))
+            tag("p_in")
     else:
         a_src = S["action"]
         df = df.with_columns(__action=pl.col(a_src).cast(pl.String, strict=False)
@@ -1314,6 +1325,8 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
         else:
             df = df.with_columns(__resets_wear=by_phrase)
 
+    tag("other")
+    checks = _checks_that_may_fail(df, checks, groups, plan, settings)
     df = df.with_columns([flag.fill_null(False).alias(f"_f{i}")
                           for i, (flag, _, _, _) in enumerate(checks)])
     fcols = [f"_f{i}" for i in range(len(checks))]
@@ -1321,7 +1334,8 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
     for i in reversed(range(len(checks))):
         rule = pl.when(pl.col(fcols[i])).then(pl.lit(checks[i][1])).otherwise(rule)
     # the rule (first failing check) is worked out for the failing rows only
-    is_bad = df.select(pl.any_horizontal(fcols)).to_series()
+    is_bad = (df.select(pl.any_horizontal(fcols)).to_series() if fcols
+              else pl.Series([False]).extend_constant(False, df.height - 1).head(df.height))
     canon = [_C + c for c in FIELDS[kind] if _C + c in df.columns]
     if not is_bad.any():
         good = df.select(["_line"] + canon)
@@ -1338,6 +1352,61 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
     bad = bad.select("_line", "_rule", col.alias("_col"), msg.alias("_msg"),
                      _raw_json(plan, fmt).alias("_raw"))
     return good, bad
+
+
+def _checks_that_may_fail(df: pl.DataFrame, checks: list, groups: list[str], plan: _Plan,
+                          settings) -> list:
+    """``checks`` without those that chunk-wide figures prove false for every row.
+
+    Most chunks are clean, and evaluating every check row by row was most of the validation
+    time. One pass of reductions (null counts, NaN present, minimum and maximum) settles
+    a whole group of checks (``groups`` names the group of each check): a numeric column
+    with no null and a finite range inside its bounds fails none of missing_value,
+    not_numeric, not_finite or out_of_range (its value is null wherever its text is empty or
+    not a number); a timestamp column that parsed everywhere fails none of the timestamp
+    rules; no row is malformed. A check that is false everywhere cannot be a row's first
+    failing check, so dropping it changes no result. The unit_id check and maintenance
+    checks are always evaluated.
+    """
+    numeric = [c for c in NUMERIC if plan.kind == "telemetry" and c in groups]
+    stats = [pl.col("__ts").null_count().alias("ts_nulls"),
+             pl.col("_malformed").any().fill_null(False).alias("malformed")]
+    for canon in numeric:
+        v = pl.col(_C + canon)
+        # min and max skip NaN (and are several times cheaper than nan_min / nan_max)
+        stats += [v.null_count().alias(f"{canon}_nulls"), v.is_nan().any().alias(f"{canon}_nan"),
+                  v.min().alias(f"{canon}_min"), v.max().alias(f"{canon}_max")]
+    if "p_in" in numeric and "p_in" in plan.sources:
+        stats.append(pl.col("__p_in_parsed").null_count().alias("p_in_parsed_nulls"))
+    st = df.select(stats).row(0, named=True)
+    clean = set()
+    if st["ts_nulls"] == 0:
+        clean.add("ts")
+    if not st["malformed"]:
+        clean.add("malformed")
+    bounds = _numeric_bounds(settings)
+    for canon in numeric:
+        lo, hi, _ = bounds[canon]
+        mn, mx = st[f"{canon}_min"], st[f"{canon}_max"]
+        if (st[f"{canon}_nulls"] == 0 and st.get(f"{canon}_parsed_nulls", 0) == 0
+                and not st[f"{canon}_nan"] and mn is not None and mx is not None and math.isfinite(mn)
+                and math.isfinite(mx) and lo <= mn and mx <= hi):
+            clean.add(canon)
+    return [c for c, g in zip(checks, groups) if g not in clean]
+
+
+def _numeric_bounds(settings) -> dict[str, tuple[float, float, str]]:
+    """(lowest, highest, unit) accepted for each numeric column (canonical units)."""
+    return {
+        "v_in": (-settings.v_max_v, settings.v_max_v, "V"),
+        "i_in": (-settings.i_max_a, settings.i_max_a, "A"),
+        "p_in": (-settings.p_max_w, settings.p_max_w, "W"),
+        "n_in": (0.0, settings.n_max_rpm, "rpm"),
+        "n_out": (0.0, settings.n_max_rpm, "rpm"),
+        "ratio_cmd": (settings.ratio_min, settings.ratio_max, "-"),
+        "t_out": (-settings.t_out_max_nm, settings.t_out_max_nm, "N*m"),
+        "temp": (settings.temp_min_c, settings.temp_max_c, "degC"),
+    }
 
 
 def _raw_json(plan: _Plan, fmt: str) -> pl.Expr:
@@ -1547,6 +1616,25 @@ def _with_conflicts(bad: pl.DataFrame, conflicts: list[pl.DataFrame], plan: _Pla
     raw = raw_rows.text(conf["_line"]).select("_line", _raw_json(plan, fmt).alias("_raw"))
     conf = conf.join(raw, on="_line", how="left")
     return pl.concat([bad, conf.select(bad.columns)])
+
+
+def _dedupe_and_sort(good: pl.DataFrame, plan: _Plan
+                     ) -> tuple[pl.DataFrame, list[pl.DataFrame], int]:
+    """``_dedupe_in_chunk`` followed by ``_sorted_by_key``, cheaper when the chunk has no
+    repeated key (nearly always): the rows are sorted first, and with the sort stable and
+    the key in the sort, a repeated key would sit next to itself. Only a chunk with one
+    takes the general path."""
+    kind = plan.kind
+    srt = _sorted_by_key(good, kind)
+    if srt.height > 1:
+        key = [pl.col(_C + k) for k in KEYS[kind]]
+        repeated = pl.all_horizontal([k.eq_missing(k.shift(1)) for k in key]).any()
+        if not srt.select(repeated).item():
+            return srt, [], 0
+    else:
+        return srt, [], 0
+    cand, conflicts, dups = _dedupe_in_chunk(good, plan)
+    return _sorted_by_key(cand, kind), conflicts, dups
 
 
 def _sorted_by_key(cand: pl.DataFrame, kind: str) -> pl.DataFrame:
@@ -1886,13 +1974,12 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                     good, tail = _hold_tail(good)
                     if tail is not None:
                         held = (tail, raw.since(tail["_line"].min()))
-            cand, conflicts, dups = _dedupe_in_chunk(good, plan)
-            # the rows to append are sorted and converted while earlier chunks are still
-            # being written (the writer thread is the busiest); only the lake lookup needs
-            # the earlier writes, and it rarely finds anything to take out again
+            # the rows to append are deduped, sorted and converted while earlier chunks are
+            # still being written (the writer thread is the busiest); only the lake lookup
+            # needs the earlier writes, and it rarely finds anything to take out again
+            cand, conflicts, dups = _dedupe_and_sort(good, plan)
             out = box = None
             if cand.height:
-                cand = _sorted_by_key(cand, kind)
                 out = _output(cand, kind, fr.batch_id, lake)
                 box = _KeyBox.of(cand)
                 if deferred_box is not None and deferred_box.overlaps(box):
