@@ -1501,7 +1501,7 @@ def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
     umin, umax = keys["unit_id"].min(), keys["unit_id"].max()
     prune = (f"ts >= '{_iso(tmin)}' AND ts <= '{_iso(tmax)}' AND unit_id >= {_sql_str(umin)} "
              f"AND unit_id <= {_sql_str(umax)}")
-    ds = lake.raw_dataset(kind, file_pruning_predicate=prune)
+    ds = lake.latest_dataset(kind, file_pruning_predicate=prune)
     if ds is None or not ds.files:
         return empty
     units = pa.array(keys["unit_id"].unique().to_list(), pa.string())
@@ -1658,12 +1658,13 @@ def _output(cand: pl.DataFrame, kind: str, batch_id: str, lake: Lake) -> pa.Tabl
 
 # =========================================================================== pipeline
 # Two cores, three stages: one thread reads and parses the next chunks, the main thread
-# validates, dedupes and sorts the current one, one thread writes earlier ones to the lake
-# (deltalake and polars release the GIL). Each stage may run ahead of the next by a bounded
-# number of chunks, so that a short stall in one stage does not leave a core idle, and
-# memory stays bounded. Dedupe of chunk n waits for the earlier writes whose rows may share
-# a key with it (their key ranges overlap, see _KeyBox), so it sees what a sequential run
-# would see; the order of commits is the order of submission.
+# validates, dedupes and sorts the current one, writer threads write earlier ones to the
+# lake (deltalake and polars release the GIL). Each stage may run ahead of the next by a
+# bounded number of chunks, so that a short stall in one stage does not leave a core idle,
+# and memory stays bounded. Dedupe of chunk n waits for the earlier writes whose rows may
+# share a key with it (their key ranges overlap, see _KeyBox), and for every write submitted
+# before those, so it sees what a sequential run would see; two writes may commit in either
+# order (their rows are disjoint, and the batch becomes visible only with its ledger row).
 
 _DONE = object()
 
@@ -1673,6 +1674,7 @@ _DONE = object()
 # about 1.6 of 2 cores). Each extra chunk in flight costs about 100 MB.
 _READ_AHEAD = 2
 _WRITE_AHEAD = 2
+_WRITERS = 2
 
 
 @dataclass(frozen=True)
@@ -1772,14 +1774,18 @@ class _Dropped(Exception):
 
 
 class _Writer:
-    """One background thread that runs lake appends in submission order.
+    """Background threads that run lake appends (Delta commits), up to ``_WRITERS`` at once.
 
-    ``gate`` runs in that thread once, before the first append: it begins the batch (waits
-    for the content hash, checks the ledger, marks the batch pending), so the main thread
-    goes on validating while the hash is worked out. Appends of accepted rows carry their
-    key box; ``wait_for`` waits only for the appends whose box overlaps a given one. Once
-    an append (or the gate) fails, the appends behind it are dropped and the failure is
-    raised in the calling thread by the next ``append``, ``wait_for`` or ``wait``.
+    ``gate`` runs once, before the first append: it begins the batch (waits for the content
+    hash, checks the ledger, marks the batch pending), so the main thread goes on validating
+    while the hash is worked out; no append starts before it has run. An append that
+    creates its table runs alone; appends to existing tables may commit concurrently (Delta
+    appends do not conflict: the later one is committed as the next version), which keeps
+    both cores busy once the other stages have run out of work at the end of a file.
+    Appends of accepted rows carry their key box; ``wait_for`` waits only for the appends
+    whose box overlaps a given one. Once an append (or the gate) fails, the appends not yet
+    started are dropped and the failure is raised in the calling thread by the next
+    ``append``, ``wait_for`` or ``wait``.
     """
 
     def __init__(self, lake: Lake, gate: Callable[[], None] | None = None,
@@ -1788,17 +1794,31 @@ class _Writer:
         self.gate = gate
         self.ahead = ahead
         self.failed: BaseException | None = None
-        self.pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="fleetwatch-write")
+        self.pool = ThreadPoolExecutor(max_workers=_WRITERS,
+                                       thread_name_prefix="fleetwatch-write")
         self.pending: list[tuple[Future, _KeyBox | None]] = []
+        self._alone = threading.Lock()      # held by the gate and by table-creating appends
+        self._exists: set[str] = set()
 
     def _run(self, name: str, data) -> None:
         if self.failed is not None:
             raise _Dropped
         try:
-            if self.gate is not None:
-                gate, self.gate = self.gate, None
-                gate()
+            if name not in self._exists:
+                with self._alone:
+                    if self.failed is not None:
+                        raise _Dropped
+                    if self.gate is not None:
+                        gate, self.gate = self.gate, None
+                        gate()
+                    if not self.lake.has_table(name):
+                        self.lake.append(name, data)
+                        self._exists.add(name)
+                        return
+                    self._exists.add(name)
             self.lake.append(name, data)
+        except _Dropped:
+            raise
         except BaseException as exc:
             self.failed = exc
             raise

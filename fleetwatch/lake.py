@@ -123,6 +123,7 @@ class Lake:
     def __init__(self, path: str | os.PathLike, lock_timeout_s: float = 0.0):
         self.path = Path(path).expanduser().absolute()
         self.lock_timeout_s = float(lock_timeout_s)
+        self._kept_open: dict[str, object] = {}    # see latest_dataset
 
     @classmethod
     def from_settings(cls, settings) -> "Lake":
@@ -237,6 +238,29 @@ class Lake:
         """
         dt = self._delta(name)
         return None if dt is None else self._raw_dataset(dt, name, file_pruning_predicate)
+
+    def latest_dataset(self, name: str, file_pruning_predicate: str | None = None
+                       ) -> pds.Dataset | None:
+        """``raw_dataset`` for lookups repeated by the writer (ingest, chunk after chunk):
+        the table stays open between calls and only the commits added since are read.
+        Opening it afresh replays its whole log, which grows by a commit per chunk. Only
+        while this object holds the writer lock (nobody else can change the tables); the
+        kept tables are dropped when the lock is taken and released."""
+        dt = self._kept_open.get(name)
+        if dt is None:
+            dt = self._delta(name)
+            if dt is None:
+                return None
+            self._kept_open[name] = dt
+        else:
+            try:
+                dt.update_incremental()
+            except Exception as exc:  # deltalake raises its own hierarchy
+                self._kept_open.pop(name, None)
+                raise LakeError(f"cannot read table '{name}' in {self.path}: {exc}",
+                                hint="The table folder may be damaged; check its _delta_log."
+                                ) from exc
+        return self._raw_dataset(dt, name, file_pruning_predicate)
 
     def pending_batches(self) -> list[str]:
         d = self._meta / "pending"
@@ -515,10 +539,12 @@ class Lake:
             return
         token = self._acquire(lock, purpose)
         _HELD[key] = 1
+        self._kept_open.clear()     # another writer may have changed the tables meanwhile
         try:
             yield self
         finally:
             _HELD.pop(key, None)
+            self._kept_open.clear()
             try:
                 held = json.loads(lock.read_text())
                 if held.get("token") == token:

@@ -619,7 +619,7 @@ def test_sorted_input_never_reads_its_own_earlier_chunks_back(tmp_path, monkeypa
     # the rows of the last timestamp (or unit) of a chunk are held back to the next chunk, so
     # the lake lookup of each chunk skips the files of the chunks before it by their key range
     opened = []
-    real = Lake.raw_dataset
+    real = Lake.latest_dataset
 
     def counting(self, name, file_pruning_predicate=None):
         ds = real(self, name, file_pruning_predicate)
@@ -627,7 +627,7 @@ def test_sorted_input_never_reads_its_own_earlier_chunks_back(tmp_path, monkeypa
             opened.append(len(ds.files))
         return ds
 
-    monkeypatch.setattr(Lake, "raw_dataset", counting)
+    monkeypatch.setattr(Lake, "latest_dataset", counting)
     f, lake = _ingest_text(tmp_path, order, _fleet_rows(order=order), 20)
     assert (f.rows_read, f.accepted) == (600, 600)
     assert lake.version("telemetry") >= 5 and len(opened) >= 5
@@ -680,6 +680,9 @@ def test_writer_waits_only_for_appends_that_may_share_a_key(tmp_path):
     release, gated, done = threading.Event(), [], []
 
     class SlowLake:
+        def has_table(self, name):
+            return True
+
         def append(self, name, data):
             release.wait(10)
             done.append(data)
@@ -702,10 +705,19 @@ def test_writer_drops_appends_after_a_failure_and_raises_it(tmp_path):
     from fleetwatch.errors import LakeError
     from fleetwatch.ingest import _Writer
 
+    import time
+
     done = []
 
     class FailingLake:
+        def has_table(self, name):
+            return True
+
         def append(self, name, data):
+            if data == "a":             # runs alongside "b": ends only once "b" has failed
+                t_end = time.monotonic() + 10
+                while w.failed is None and time.monotonic() < t_end:
+                    time.sleep(0.01)
             if data == "b":
                 raise LakeError("disk full (simulated)")
             done.append(data)
@@ -722,6 +734,47 @@ def test_writer_drops_appends_after_a_failure_and_raises_it(tmp_path):
         assert done == ["a"]                    # "c" was never written
     finally:
         w.close()
+
+
+def test_writer_commits_two_appends_at_once_but_creates_a_table_alone(tmp_path):
+    # two writer threads keep both cores busy at the end of a file; an append that creates
+    # its table must not race another one (both would try to write version 0)
+    import threading
+    import time
+
+    from fleetwatch.ingest import _WRITERS, _Writer
+
+    class TrackingLake:
+        def __init__(self):
+            self.tables, self.running, self.log = set(), 0, []
+            self.lock = threading.Lock()
+
+        def has_table(self, name):
+            return name in self.tables
+
+        def append(self, name, data):
+            with self.lock:
+                self.running += 1
+                self.log.append((data, self.running))
+            time.sleep(0.2)
+            with self.lock:
+                self.running -= 1
+                self.tables.add(name)
+                self.log.append((data + " done", self.running))
+
+    lake, gated = TrackingLake(), []
+    w = _Writer(lake, gate=lambda: gated.append(len(lake.log)))
+    try:
+        for d in ("a", "b", "c"):
+            w.append("telemetry", d)
+        w.wait()
+    finally:
+        w.close()
+    assert gated == [0]                             # the gate ran once, before any append
+    assert _WRITERS == 2
+    assert lake.log[:2] == [("a", 1), ("a done", 0)]    # creating "telemetry": alone
+    assert sorted(lake.log[2:4]) == [("b", 1), ("c", 2)] or sorted(lake.log[2:4]) == [
+        ("b", 2), ("c", 1)]                         # then two at once
 
 
 def test_glibc_malloc_setting_applies_on_glibc_and_yields_to_the_users(monkeypatch):

@@ -52,6 +52,24 @@ def test_append_refuses_unknown_and_missing_columns(tmp_path):
     assert not lake.has_table("telemetry")
 
 
+def test_latest_dataset_follows_commits_made_while_it_is_kept_open(tmp_path):
+    # ingest's lake lookups keep the table open between chunks; a lookup must still see
+    # every row committed since (from this thread or a writer thread), or dedupe would miss
+    lake = Lake(tmp_path / "lake")
+    with lake.writer("test"):
+        assert lake.latest_dataset("telemetry") is None
+        lake.append("telemetry", _tele(5, batch="b1"))
+        assert lake.latest_dataset("telemetry").count_rows() == 5
+        lake.append("telemetry", _tele(7, unit="U2", batch="b2"))
+        ds = lake.latest_dataset("telemetry", file_pruning_predicate="unit_id = 'U2'")
+        assert ds.count_rows() == 7
+        assert lake.latest_dataset("telemetry").count_rows() == 12
+        lake.delete_where("telemetry", "batch_id = 'b1'")
+        assert lake.latest_dataset("telemetry").count_rows() == 7
+        assert lake._kept_open
+    assert not lake._kept_open          # dropped with the lock: others may write meanwhile
+
+
 def test_non_utc_input_is_stored_as_the_same_instant(tmp_path):
     lake = Lake(tmp_path / "lake")
     df = _tele(2).with_columns(pl.col("ts").dt.convert_time_zone("Europe/Lisbon"))
