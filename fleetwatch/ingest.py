@@ -1201,8 +1201,7 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
 
     uid_src, ts_src = S["unit_id"], S["ts"]
 
-    df = df.with_columns(__unit_id=pl.col(uid_src).cast(pl.String, strict=False)
-                         .str.strip_chars())
+    df = df.with_columns(__unit_id=_stripped(df[uid_src]))
     df = _timestamp(df, ts_src, plan)
     checks.append((pl.col("_malformed"), "malformed_row", None,
                    pl.lit("the row has more fields than the header (or is not a JSON object)")))
@@ -1352,6 +1351,16 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
     bad = bad.select("_line", "_rule", col.alias("_col"), msg.alias("_msg"),
                      _raw_json(plan, fmt).alias("_raw"))
     return good, bad
+
+
+def _stripped(col: pl.Series) -> pl.Series:
+    """``col`` as text without surrounding blanks. Unit ids take few distinct values: when
+    none of them has blanks to strip, the column is used as it is (half the cost)."""
+    s = col.cast(pl.String, strict=False)
+    distinct = s.unique()
+    if distinct.len() * 8 < s.len() and distinct.str.strip_chars().equals(distinct):
+        return s
+    return s.str.strip_chars()
 
 
 def _checks_that_may_fail(df: pl.DataFrame, checks: list, groups: list[str], plan: _Plan,
@@ -1646,6 +1655,15 @@ def _sorted_by_key(cand: pl.DataFrame, kind: str) -> pl.DataFrame:
     return cand if order is None else cand[pl.from_arrow(order)]
 
 
+def _joined_in_key_order(a: pa.Table, b: pa.Table, kind: str) -> pa.Table:
+    """Two tables of rows to append, each in key order, as one table in key order (the
+    writer is told not to check)."""
+    joined = pa.concat_tables([a, b])
+    key = list(KEYS[kind])
+    order = lakemod.sort_order(joined.select(key), key)
+    return joined if order is None else joined.take(order)
+
+
 def _output(cand: pl.DataFrame, kind: str, batch_id: str, lake: Lake) -> pa.Table:
     """Rows to append to ``kind``, in ``cand``'s order: canonical columns, batch_id (and
     day), cast to the contract."""
@@ -1653,7 +1671,7 @@ def _output(cand: pl.DataFrame, kind: str, batch_id: str, lake: Lake) -> pa.Tabl
     out = out.with_columns(batch_id=pl.lit(batch_id))
     if kind == "telemetry":
         out = out.with_columns(day=pl.col("ts").dt.date())
-    return lake._prepare(kind, out)
+    return lake._prepare(kind, out, in_key_order=True)     # cand is sorted (_dedupe_and_sort)
 
 
 # =========================================================================== pipeline
@@ -1800,7 +1818,7 @@ class _Writer:
         self._alone = threading.Lock()      # held by the gate and by table-creating appends
         self._exists: set[str] = set()
 
-    def _run(self, name: str, data) -> None:
+    def _run(self, name: str, data, in_key_order: bool) -> None:
         if self.failed is not None:
             raise _Dropped
         try:
@@ -1812,11 +1830,11 @@ class _Writer:
                         gate, self.gate = self.gate, None
                         gate()
                     if not self.lake.has_table(name):
-                        self.lake.append(name, data)
+                        self.lake.append(name, data, in_key_order=in_key_order)
                         self._exists.add(name)
                         return
                     self._exists.add(name)
-            self.lake.append(name, data)
+            self.lake.append(name, data, in_key_order=in_key_order)
         except _Dropped:
             raise
         except BaseException as exc:
@@ -1828,14 +1846,16 @@ class _Writer:
         if self.failed is not None:
             raise self.failed
 
-    def append(self, name: str, data, box: _KeyBox | None = None) -> None:
-        """Queue an append (``box``: key box of accepted rows; None for quarantine rows).
-        Blocks while ``ahead`` appends are already running or queued (bounded memory)."""
+    def append(self, name: str, data, box: _KeyBox | None = None,
+               in_key_order: bool = False) -> None:
+        """Queue an append (``box``: key box of accepted rows; None for quarantine rows;
+        ``in_key_order``: see Lake.append). Blocks while ``ahead`` appends are already
+        running or queued (bounded memory)."""
         self._reap()
         while len(self.pending) >= self.ahead:
             wait_futures([f for f, _ in self.pending], return_when=FIRST_COMPLETED)
             self._reap()
-        self.pending.append((self.pool.submit(self._run, name, data), box))
+        self.pending.append((self.pool.submit(self._run, name, data, in_key_order), box))
 
     def wait_for(self, box: _KeyBox) -> None:
         """Block until every append whose rows may share a key with ``box`` is committed
@@ -1975,7 +1995,7 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                 if chunk.height == 0:
                     continue
                 if deferred is not None:    # more rows follow: the last chunk's rows can go
-                    writer.append(kind, deferred, deferred_box)
+                    writer.append(kind, deferred, deferred_box, in_key_order=True)
                     deferred = deferred_box = None
                 retext = item[1]
                 fr.rows_read += chunk.height
@@ -2005,7 +2025,7 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                 if deferred_box is not None and deferred_box.overlaps(box):
                     # rows not yet handed over may share a key with these (input in no
                     # usable order): commit them first
-                    writer.append(kind, deferred, deferred_box)
+                    writer.append(kind, deferred, deferred_box, in_key_order=True)
                     deferred = deferred_box = None
             # earlier writes that may hold these keys are in the lake before dedupe looks
             # there; for rows in time order (or unit order) the held-back tail makes the
@@ -2023,7 +2043,7 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
             if cand.height:
                 # written once the next chunk arrives, or at the end together with the rows
                 # held back (one commit for a file of one chunk)
-                deferred = out if deferred is None else pa.concat_tables([deferred, out])
+                deferred = out if deferred is None else _joined_in_key_order(deferred, out, kind)
                 deferred_box = box.union(deferred_box)
                 fr.accepted += cand.height
             if bad.height:
@@ -2043,7 +2063,7 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
             # be referenced, and memory is bounded by the chunks alive at once
             chunk = item = retext = raw = good = bad = cand = out = q = keep = None
         if deferred is not None:
-            writer.append(kind, deferred, deferred_box)
+            writer.append(kind, deferred, deferred_box, in_key_order=True)
             deferred = None
         writer.wait()
         if not begun:

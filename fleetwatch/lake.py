@@ -357,7 +357,9 @@ class Lake:
 
     # ------------------------------------------------------------------ writing
 
-    def _prepare(self, name: str, data) -> pa.Table:
+    def _prepare(self, name: str, data, in_key_order: bool = False) -> pa.Table:
+        """``data`` as an Arrow table with the contract's columns and types, sorted by the
+        table's key (``in_key_order``: the caller guarantees it already is; not checked)."""
         if isinstance(data, pl.DataFrame):
             tbl = data.to_arrow()
         elif isinstance(data, pa.Table):
@@ -403,7 +405,10 @@ class Lake:
         out = pa.Table.from_arrays(arrays, schema=schema)
         key = [k for k in contract.key if k in schema.names]
         if key and out.num_rows > 1:
-            out = _sort_by_key(out, key)
+            if not in_key_order:
+                return _sort_by_key(out, key)
+            if any(c.num_chunks > 1 for c in out.columns):
+                return out.combine_chunks()     # one contiguous batch, as a sort gives
         return out
 
     def _partition(self, name: str, partition_by) -> list[str] | None:
@@ -429,14 +434,16 @@ class Lake:
                             ) from exc
         return self.version(name)
 
-    def append(self, name: str, data, partition_by=None) -> int:
+    def append(self, name: str, data, partition_by=None, in_key_order: bool = False) -> int:
         """Atomic Delta append; returns the new version (the current one for 0 rows).
 
         Known tables are cast to the schema.py contract (order, types, optional columns
-        filled with null); telemetry gets ``day`` from ``ts`` when absent. The caller holds
-        the writer lock (``with lake.writer(...)``).
+        filled with null) and sorted by their key (``in_key_order``: the caller guarantees
+        the rows already are, e.g. ingest, which sorts them itself; not checked);
+        telemetry gets ``day`` from ``ts`` when absent. The caller holds the writer lock
+        (``with lake.writer(...)``).
         """
-        tbl = self._prepare(name, data)
+        tbl = self._prepare(name, data, in_key_order)
         if tbl.num_rows == 0 and self.has_table(name):
             return self.version(name)
         return self._write(name, tbl, "append", self._partition(name, partition_by))

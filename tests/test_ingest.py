@@ -508,6 +508,43 @@ def _ingest_text(tmp_path, name, recs, chunk_rows):
     return rep.files[0], lake
 
 
+@pytest.mark.parametrize("order", ["time", "unit", "shuffled"])
+def test_every_file_ingest_writes_is_sorted_by_unit_and_time(tmp_path, order):
+    # ingest sorts each chunk itself and tells the lake not to check again; the last commit
+    # joins the last chunk with the rows held back from it, and that one is sorted again
+    import random
+
+    import pyarrow.parquet as pq
+
+    recs, _, _ = _plant_duplicates(_fleet_rows(order="unit" if order == "unit" else "time"))
+    if order == "shuffled":
+        random.Random(3).shuffle(recs)
+    f, lake = _ingest_text(tmp_path, order, recs, 20)
+    assert f.status == "ok" and f.accepted == 600
+    files = [p for p in (lake.path / "telemetry").rglob("*.parquet")]
+    assert len(files) >= 5
+    for p in files:
+        keys = pl.from_arrow(pq.read_table(p, columns=["unit_id", "ts"]))
+        assert keys.equals(keys.sort("unit_id", "ts")), (order, p.name)
+
+
+def test_rows_joined_for_the_last_commit_are_put_back_in_key_order():
+    # the last chunk's rows and the rows held back from it go out in one commit, which the
+    # writer does not sort again: each part is sorted, their union is not
+    import pyarrow as pa
+
+    from fleetwatch.ingest import _joined_in_key_order
+
+    t = [datetime(2024, 5, 1, tzinfo=UTC) + timedelta(seconds=10 * i) for i in range(4)]
+    ts = pa.timestamp("us", "UTC")
+    a = pa.table({"unit_id": ["U1", "U1", "U2", "U2"], "ts": pa.array(t, ts), "p": [1, 2, 3, 4]})
+    b = pa.table({"unit_id": ["U1", "U2"], "ts": pa.array([t[3] + timedelta(seconds=10)] * 2, ts),
+                  "p": [5, 6]})
+    j = _joined_in_key_order(a, b, "telemetry")
+    assert j.column("unit_id").to_pylist() == ["U1", "U1", "U1", "U2", "U2", "U2"]
+    assert j.column("p").to_pylist() == [1, 2, 5, 3, 4, 6]
+
+
 @pytest.mark.parametrize("order", ["time", "unit"])
 def test_small_chunks_give_the_same_result_as_one_chunk(tmp_path, order):
     # 600 records of ~60 bytes: chunks of 20 rows are cut by the 4 kB block floor into
@@ -573,12 +610,12 @@ def test_a_failed_write_leaves_the_batch_invisible_and_a_rerun_completes_it(tmp_
     settings = load_settings(tmp_path / "proj", env={}, overrides={"ingest_chunk_rows": 20})
     real_append, calls = Lake.append, []
 
-    def failing_append(self, name, data, partition_by=None):
+    def failing_append(self, name, data, partition_by=None, in_key_order=False):
         if name == "telemetry":
             calls.append(name)
-            if len(calls) == 3:           # runs in the writer thread, after two commits
+            if len(calls) == 3:           # runs in a writer thread, after other commits
                 raise LakeError("disk full (simulated)")
-        return real_append(self, name, data, partition_by)
+        return real_append(self, name, data, partition_by, in_key_order)
 
     monkeypatch.setattr(Lake, "append", failing_append)
     with pytest.raises(LakeError, match="disk full"):
@@ -683,7 +720,7 @@ def test_writer_waits_only_for_appends_that_may_share_a_key(tmp_path):
         def has_table(self, name):
             return True
 
-        def append(self, name, data):
+        def append(self, name, data, in_key_order=False):
             release.wait(10)
             done.append(data)
 
@@ -713,7 +750,7 @@ def test_writer_drops_appends_after_a_failure_and_raises_it(tmp_path):
         def has_table(self, name):
             return True
 
-        def append(self, name, data):
+        def append(self, name, data, in_key_order=False):
             if data == "a":             # runs alongside "b": ends only once "b" has failed
                 t_end = time.monotonic() + 10
                 while w.failed is None and time.monotonic() < t_end:
@@ -752,7 +789,7 @@ def test_writer_commits_two_appends_at_once_but_creates_a_table_alone(tmp_path):
         def has_table(self, name):
             return name in self.tables
 
-        def append(self, name, data):
+        def append(self, name, data, in_key_order=False):
             with self.lock:
                 self.running += 1
                 self.log.append((data, self.running))
