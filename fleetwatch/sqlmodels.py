@@ -446,7 +446,7 @@ def _read_scope(con: Any, params: dict):
                           params=params).to_arrow_table()
         finally:
             con.unregister("_prior_units")
-        scope = scope.filter(~(c("is_prior") & c("unit_id").is_in(need["unit_id"])))
+        scope = scope.filter(~(c("is_prior") & c("unit_id").is_in(need["unit_id"].implode())))
         if far.num_rows:
             scope = pl.concat([scope, pl.from_arrow(far, rechunk=False)], rechunk=False)
     return scope
