@@ -1697,6 +1697,7 @@ _DONE = object()
 # about 1.6 of 2 cores). Each extra chunk in flight costs about 100 MB.
 _READ_AHEAD = 2
 _WRITE_AHEAD = 2
+_GATE_AHEAD = 2     # more appends waiting while the writers wait for the gate (see _Writer)
 _WRITERS = 2
 
 
@@ -1822,6 +1823,7 @@ class _Writer:
         self.pending: list[tuple[Future, _KeyBox | None]] = []
         self._alone = threading.Lock()      # held by the gate and by table-creating appends
         self._exists: set[str] = set()
+        self._open = gate is None           # the gate has run
 
     def _run(self, name: str, data, in_key_order: bool) -> None:
         if self.failed is not None:
@@ -1834,6 +1836,7 @@ class _Writer:
                     if self.gate is not None:
                         gate, self.gate = self.gate, None
                         gate()
+                        self._open = True
                     if not self.lake.has_table(name):
                         self.lake.append(name, data, in_key_order=in_key_order)
                         self._exists.add(name)
@@ -1857,7 +1860,9 @@ class _Writer:
         ``in_key_order``: see Lake.append). Blocks while ``ahead`` appends are already
         running or queued (bounded memory)."""
         self._reap()
-        while len(self.pending) >= self.ahead:
+        # until the gate has run (the content hash takes a second or two on a large file)
+        # nothing is written: let the main thread run further ahead meanwhile
+        while len(self.pending) >= self.ahead + (0 if self._open else _GATE_AHEAD):
             wait_futures([f for f, _ in self.pending], return_when=FIRST_COMPLETED)
             self._reap()
         self.pending.append((self.pool.submit(self._run, name, data, in_key_order), box))
