@@ -24,6 +24,7 @@ import math
 import os
 import re
 import socket
+import threading
 import time
 import warnings
 from contextlib import contextmanager
@@ -124,6 +125,8 @@ class Lake:
         self.path = Path(path).expanduser().absolute()
         self.lock_timeout_s = float(lock_timeout_s)
         self._kept_open: dict[str, object] = {}    # see latest_dataset
+        self._mine = threading.local()               # see _append_target
+        self._lock_term = 0                          # changes when the lock is taken or let go
 
     @classmethod
     def from_settings(cls, settings) -> "Lake":
@@ -418,21 +421,52 @@ class Lake:
             partition_by = [partition_by]
         return list(partition_by) if partition_by else None
 
+    def _append_target(self, name: str):
+        """The table kept open by this thread for its appends while this object holds the
+        writer lock, brought up to date; None otherwise (or when the table does not exist
+        yet). Opening a table replays its log (up to a hundred commits since the last
+        checkpoint), and an append by path opened it twice, for the write and for the new
+        version: about 25 ms each on a lake with a long log, per chunk that ingest writes.
+        Each writer thread has its own: a table object is not shared between threads, and
+        an append whose snapshot is behind another thread's commit is committed after it
+        (Delta appends do not conflict)."""
+        if not _HELD.get(str(self._meta / "writer.lock")):
+            return None
+        mine = self._mine
+        if getattr(mine, "term", None) != self._lock_term:
+            mine.tables, mine.term = {}, self._lock_term
+        dt = mine.tables.get(name)
+        if dt is None:
+            dt = self._delta(name)
+            if dt is not None:
+                mine.tables[name] = dt
+            return dt
+        try:
+            dt.update_incremental()
+        except Exception:           # reopened below, with deltalake's error if it persists
+            mine.tables.pop(name, None)
+            return self._append_target(name) if self.has_table(name) else None
+        return dt
+
     def _write(self, name: str, tbl: pa.Table, mode: str, partition_by, predicate=None,
                schema_mode=None) -> int:
         from deltalake import WriterProperties, write_deltalake
         path = self._table_path(name)
         self.path.mkdir(parents=True, exist_ok=True)
+        kept = self._append_target(name) if mode == "append" else None
         try:
-            write_deltalake(str(path), tbl, mode=mode, partition_by=partition_by,
-                            predicate=predicate, schema_mode=schema_mode,
+            write_deltalake(str(path) if kept is None else kept, tbl, mode=mode,
+                            partition_by=partition_by, predicate=predicate,
+                            schema_mode=schema_mode,
                             writer_properties=WriterProperties(compression=_COMPRESSION))
         except Exception as exc:
+            if kept is not None:
+                self._mine.tables.pop(name, None)
             raise LakeError(f"writing table '{name}' in {self.path} failed: {exc}",
                             hint="Check free disk space and permissions; if the table's schema "
                                  "changed, rebuild the table (analyze rewrites derived tables)."
                             ) from exc
-        return self.version(name)
+        return self.version(name) if kept is None else kept.version()
 
     def append(self, name: str, data, partition_by=None, in_key_order: bool = False) -> int:
         """Atomic Delta append; returns the new version (the current one for 0 rows).
@@ -547,11 +581,13 @@ class Lake:
         token = self._acquire(lock, purpose)
         _HELD[key] = 1
         self._kept_open.clear()     # another writer may have changed the tables meanwhile
+        self._lock_term += 1
         try:
             yield self
         finally:
             _HELD.pop(key, None)
             self._kept_open.clear()
+            self._lock_term += 1
             try:
                 held = json.loads(lock.read_text())
                 if held.get("token") == token:

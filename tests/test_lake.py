@@ -70,6 +70,38 @@ def test_latest_dataset_follows_commits_made_while_it_is_kept_open(tmp_path):
     assert not lake._kept_open          # dropped with the lock: others may write meanwhile
 
 
+def test_appends_under_the_lock_keep_a_table_open_per_thread(tmp_path):
+    # ingest's writer threads append chunk after chunk; each keeps its own open table, and
+    # an append whose snapshot is behind another thread's commit still lands (after it)
+    import threading
+
+    lake = Lake(tmp_path / "lake")
+    with lake.writer("test"):
+        assert lake.append("telemetry", _tele(3, batch="b0")) == 0
+        kept = lake._append_target("telemetry")
+        assert kept is not None and lake._append_target("telemetry") is kept
+        errors = []
+
+        def work(k):
+            try:
+                for j in range(3):
+                    lake.append("telemetry", _tele(2, unit=f"T{k}", batch=f"t{k}-{j}",
+                                                   start=T0 + timedelta(days=k + 1, hours=j)))
+            except Exception as exc:  # reported below
+                errors.append(exc)
+
+        threads = [threading.Thread(target=work, args=(k,)) for k in range(2)]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join()
+        assert not errors
+        assert lake.append("telemetry", _tele(1, unit="Z", batch="z")) == 7
+        assert lake.version("telemetry") == 7
+    assert lake._append_target("telemetry") is None       # kept only under the lock
+    assert lake.read("telemetry").height == 3 + 12 + 1
+
+
 def test_non_utc_input_is_stored_as_the_same_instant(tmp_path):
     lake = Lake(tmp_path / "lake")
     df = _tele(2).with_columns(pl.col("ts").dt.convert_time_zone("Europe/Lisbon"))
