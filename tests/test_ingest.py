@@ -814,6 +814,26 @@ def test_writer_commits_two_appends_at_once_but_creates_a_table_alone(tmp_path):
         ("b", 2), ("c", 1)]                         # then two at once
 
 
+def test_ingest_gives_polars_one_thread_on_two_cores_unless_the_user_chose():
+    # set when fleetwatch.ingest is imported before polars (as `fleetwatch ingest` does)
+    import os
+    import subprocess
+    import sys
+
+    code = "import fleetwatch.ingest, polars; print(polars.thread_pool_size())"
+    env = {k: v for k, v in os.environ.items() if k != "POLARS_MAX_THREADS"}
+    got = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                         text=True, check=True).stdout.strip()
+    if (os.cpu_count() or 1) <= 2:
+        assert got == "1"
+    else:
+        assert int(got) >= 1
+    env["POLARS_MAX_THREADS"] = "2"
+    got = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True,
+                         text=True, check=True).stdout.strip()
+    assert got == "2"                                       # the user's setting wins
+
+
 def test_glibc_malloc_setting_applies_on_glibc_and_yields_to_the_users(monkeypatch):
     import os
     import sys
