@@ -1346,7 +1346,7 @@ def _validate(df: pl.DataFrame, plan: _Plan, settings,
         rule = pl.when(pl.col(fcols[i])).then(pl.lit(checks[i][1])).otherwise(rule)
     # the rule (first failing check) is worked out for the failing rows only
     is_bad = (df.select(pl.any_horizontal(fcols)).to_series() if fcols
-              else pl.Series([False]).extend_constant(False, df.height - 1).head(df.height))
+              else pl.repeat(False, df.height, dtype=pl.Boolean, eager=True))
     canon = [_C + c for c in FIELDS[kind] if _C + c in df.columns]
     if not is_bad.any():
         good = df.select(["_line"] + canon)
@@ -1395,7 +1395,8 @@ def _checks_that_may_fail(df: pl.DataFrame, checks: list, groups: list[str], pla
     for canon in numeric:
         v = pl.col(_C + canon)
         # min and max skip NaN (and are several times cheaper than nan_min / nan_max)
-        stats += [v.null_count().alias(f"{canon}_nulls"), v.is_nan().any().alias(f"{canon}_nan"),
+        stats += [v.null_count().alias(f"{canon}_nulls"),
+                  v.is_nan().any().alias(f"{canon}_nan"),
                   v.min().alias(f"{canon}_min"), v.max().alias(f"{canon}_max")]
     if "p_in" in numeric and "p_in" in plan.sources:
         stats.append(pl.col("__p_in_parsed").null_count().alias("p_in_parsed_nulls"))
@@ -1410,8 +1411,8 @@ def _checks_that_may_fail(df: pl.DataFrame, checks: list, groups: list[str], pla
         lo, hi, _ = bounds[canon]
         mn, mx = st[f"{canon}_min"], st[f"{canon}_max"]
         if (st[f"{canon}_nulls"] == 0 and st.get(f"{canon}_parsed_nulls", 0) == 0
-                and not st[f"{canon}_nan"] and mn is not None and mx is not None and math.isfinite(mn)
-                and math.isfinite(mx) and lo <= mn and mx <= hi):
+                and not st[f"{canon}_nan"] and mn is not None and mx is not None
+                and math.isfinite(mn) and math.isfinite(mx) and lo <= mn and mx <= hi):
             clean.add(canon)
     return [c for c, g in zip(checks, groups) if g not in clean]
 
