@@ -29,7 +29,8 @@ import polars as pl
 from .views import CreepComparison, SlipSeries
 
 __all__ = [
-    "STATUS_COLOURS", "SERIES_COLOURS", "FONT", "status_word", "status_colour", "to_svg",
+    "STATUS_COLOURS", "SERIES_COLOURS", "FONT", "status_word", "status_colour",
+    "status_text_colour", "to_svg",
     "status_counts_chart", "fleet_slip_distribution_chart", "unit_slip_chart", "creep_chart",
     "events_timeline_chart", "ratio_chart", "power_chart", "temperature_chart",
     "motor_drift_chart", "motor_drift_fleet_chart", "energy_chart", "completeness_chart",
@@ -37,11 +38,18 @@ __all__ = [
 ]
 
 #: status -> colour (hex), word and symbol. Okabe-Ito blue / orange / vermillion and a grey.
+#: ``text``: a darker shade of the same hue for words written in the status colour (or on
+#: it), which needs a contrast of at least 4.5:1 with white (WCAG 2.1, 1.4.3); the orange
+#: and the grey reach only 2.3:1 and 3.4:1.
 STATUS_COLOURS: dict[str, dict[str, str]] = {
-    "normal": {"colour": "#0072B2", "word": "normal", "symbol": "\u25cf"},    # ● blue
-    "watch": {"colour": "#E69F00", "word": "watch", "symbol": "\u25c6"},      # ◆ orange
-    "alert": {"colour": "#D55E00", "word": "alert", "symbol": "\u25b2"},      # ▲ vermillion
-    "unknown": {"colour": "#8C8C8C", "word": "no status", "symbol": "\u25cb"},  # ○ grey
+    "normal": {"colour": "#0072B2", "text": "#0072B2", "word": "normal",
+               "symbol": "\u25cf"},                                          # ● blue
+    "watch": {"colour": "#E69F00", "text": "#8F5F00", "word": "watch",
+              "symbol": "\u25c6"},                                           # ◆ orange
+    "alert": {"colour": "#D55E00", "text": "#A84A00", "word": "alert",
+              "symbol": "\u25b2"},                                           # ▲ vermillion
+    "unknown": {"colour": "#8C8C8C", "text": "#666666", "word": "no status",
+                "symbol": "\u25cb"},                                         # ○ grey
 }
 
 #: Non-status series (periods, measures). Always drawn with a second cue (shape, dash).
@@ -71,6 +79,11 @@ def status_word(status: str | None) -> str:
 
 def status_colour(status: str | None) -> str:
     return STATUS_COLOURS.get(status or "unknown", STATUS_COLOURS["unknown"])["colour"]
+
+
+def status_text_colour(status: str | None) -> str:
+    """The shade of a status colour for text (and labels with text on them)."""
+    return STATUS_COLOURS.get(status or "unknown", STATUS_COLOURS["unknown"])["text"]
 
 
 def _status_scale(statuses: list[str]) -> alt.Scale:

@@ -36,7 +36,8 @@ from .errors import UsageError
 
 __all__ = [
     "serve_dashboard", "DashboardServer", "app_path", "dashboard_command",
-    "status_label", "status_colour", "SAFETY_CAPTION", "chart_spec", "chart_alt",
+    "status_label", "status_colour", "status_text_colour", "SAFETY_CAPTION", "chart_spec",
+    "chart_alt",
     "with_markers", "html_table", "html_tables", "HTML_TABLE_ROWS",
     "marker_layer", "page_spec", "stack_specs", "time_domain",
     "cached", "lake_versions", "lake_snapshot", "LakeSnapshot",
@@ -62,6 +63,13 @@ def status_label(status: str | None) -> str:
 
 def status_colour(status: str | None) -> str:
     from .charts import status_colour as colour
+
+    return colour(status)
+
+
+def status_text_colour(status: str | None) -> str:
+    """The darker shade of a status colour used for words (fleetwatch.charts)."""
+    from .charts import status_text_colour as colour
 
     return colour(status)
 
@@ -583,7 +591,7 @@ def fleet_column_config() -> dict:
         "line": st.column_config.TextColumn("Line"),
         "status": st.column_config.MultiselectColumn(
             "Status", options=[status_label(s) for s in _TABLE_STATUSES],
-            color=[status_colour(s) for s in _TABLE_STATUSES]),
+            color=[status_text_colour(s) for s in _TABLE_STATUSES]),
         "since": st.column_config.TextColumn("Since (UTC day)"),
         "days_to_limit": st.column_config.NumberColumn(
             "Days to limit", format="%d", help="Median days until steady slip reaches the "
@@ -692,7 +700,8 @@ def html_table(df, status_col: str | None = None) -> str:
     colour next to their word. Numbers are right-aligned."""
     import html
 
-    colours = {status_label(s): status_colour(s) for s in ("alert", "watch", "normal", None)}
+    colours = {status_label(s): status_text_colour(s)
+               for s in ("alert", "watch", "normal", None)}
     head = "".join(f"<th>{html.escape(str(c))}</th>" for c in df.columns)
     numeric = {c for c, t in df.schema.items() if t.is_numeric()}
     rows = []

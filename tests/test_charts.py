@@ -58,6 +58,32 @@ def test_status_palette_words_symbols_and_colour_source():
     assert ch.status_word(None) == ch.status_word("unknown")
 
 
+def _wcag_contrast(a: str, b: str) -> float:
+    """Contrast ratio of two sRGB colours: relative luminance and (L1 + 0.05) / (L2 + 0.05)
+    as defined in WCAG 2.1 (W3C Recommendation, 'contrast ratio' and 'relative
+    luminance' in its glossary)."""
+    def lum(h):
+        r, g, b = (int(h[i:i + 2], 16) / 255 for i in (1, 3, 5))
+        f = (lambda c: c / 12.92 if c <= 0.03928 else ((c + 0.055) / 1.055) ** 2.4)
+        return 0.2126 * f(r) + 0.7152 * f(g) + 0.0722 * f(b)
+    hi, lo = sorted((lum(a), lum(b)), reverse=True)
+    return (hi + 0.05) / (lo + 0.05)
+
+
+def test_status_words_are_drawn_in_a_shade_readable_on_white():
+    # WCAG 2.1 success criterion 1.4.3: at least 4.5:1 for text of normal size
+    assert round(_wcag_contrast("#000000", "#FFFFFF"), 1) == 21.0   # the formula's end points
+    # greys either side of 4.5:1 on white: #767676 passes, #777777 (4.48) does not (from
+    # memory, a value often quoted with the criterion)
+    assert _wcag_contrast("#767676", "#FFFFFF") >= 4.5
+    assert round(_wcag_contrast("#777777", "#FFFFFF"), 2) == 4.48
+    for s in ch.STATUS_COLOURS:
+        assert _wcag_contrast(ch.status_text_colour(s), "#FFFFFF") >= 4.5, s
+    assert _wcag_contrast(ch.status_colour("watch"), "#FFFFFF") < 3     # why the shade
+    shades = [ch.status_text_colour(s) for s in ch.STATUS_COLOURS]
+    assert len(set(shades)) == len(shades)
+
+
 def test_status_counts_chart_pairs_colour_with_word(lake_week):
     lake, wk = lake_week
     counts = vw.status_counts(vw.fleet_overview(lake, wk.sunday))

@@ -177,7 +177,7 @@ def test_fleet_page_counts_statuses_with_words(app, project):
     assert first["main_reason"]
     status_col = json.loads(at.dataframe[0].proto.columns)["status"]["type_config"]
     options = {o["value"]: o["color"] for o in status_col["options"]}
-    assert options == {dash.status_label(s): dash.status_colour(s)
+    assert options == {dash.status_label(s): dash.status_text_colour(s)
                        for s in ("alert", "watch", "normal", None)}
     # the safety caption is on every page (sidebar)
     assert any("lock" in c.value and "qualified people decide" in c.value
@@ -230,7 +230,7 @@ def test_choosing_a_unit_opens_it(app, project):
     # its status, with the word in its colour, and its reasons are shown
     html = " ".join(h.proto.body for h in at.get("html"))
     status = truth.status_end[wear_unit]
-    assert (f'<span style="color:{dash.status_colour(status)};font-weight:600">'
+    assert (f'<span style="color:{dash.status_text_colour(status)};font-weight:600">'
             f'{dash.status_label(status)}</span>') in html
     assert "<li>steady slip at load" in html
 
@@ -260,7 +260,7 @@ def test_unit_page_draws_every_section(app, project):
                    for d in at.dataframe)
     # status colours in the table come with their words
     body = next(h.proto.body for h in at.get("html") if "Status changes" in h.proto.body)
-    assert (f'color:{dash.status_colour("alert")};font-weight:600">'
+    assert (f'color:{dash.status_text_colour("alert")};font-weight:600">'
             f'{dash.status_label("alert")}<') in body
 
 
@@ -790,7 +790,7 @@ def test_html_table_escapes_and_pairs_status_colours_with_words():
     assert "<td>–</td>" in out                                   # null
     assert '<td class="num">1.25</td>' in out                    # numbers right-aligned
     for s in ("watch", "alert"):
-        assert (f'<span style="color:{dash.status_colour(s)};font-weight:600">'
+        assert (f'<span style="color:{dash.status_text_colour(s)};font-weight:600">'
                 f'{dash.status_label(s)}</span>') in out
     assert out.count("<tr>") == 3                                # header + 2 rows
     both = dash.html_tables([("A <title>", out), ("B", dash.html_table(df.head(1)))])
