@@ -1914,13 +1914,15 @@ def _ledger_row(fr: FileReport, started: datetime) -> pl.DataFrame:
     })
 
 
-def _done_hashes(lake: Lake) -> set[tuple[str, str]]:
+def _done_hashes(lake: Lake) -> tuple[set[tuple[str, str]], set[tuple[str, str]]]:
+    """(content hash, kind) and (source file, kind) of the files ingested so far."""
     ds = lake.raw_dataset("batches")
     if ds is None:
-        return set()
-    t = pl.from_arrow(ds.to_table(columns=["content_sha256", "kind", "status"]))
+        return set(), set()
+    t = pl.from_arrow(ds.to_table(columns=["content_sha256", "kind", "status", "source_file"]))
     t = t.filter(pl.col("status") == "ok")
-    return set(zip(t["content_sha256"].to_list(), t["kind"].to_list()))
+    return (set(zip(t["content_sha256"].to_list(), t["kind"].to_list())),
+            set(zip(t["source_file"].to_list(), t["kind"].to_list())))
 
 
 class _AlreadyIngested(Exception):
@@ -1951,6 +1953,11 @@ class _Hasher:
         """Stop reading the file when nobody will ask for the result."""
         self._stop.set()
 
+    def peek(self) -> str | None:
+        """The hex digest if it is already known (and reading the file did not fail);
+        None otherwise. Does not wait."""
+        return None if self._thread.is_alive() or self._error is not None else self._sha
+
     def result(self) -> str:
         """The hex digest; raises what reading the file raised (OSError)."""
         self._thread.join()
@@ -1962,7 +1969,8 @@ class _Hasher:
 
 def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | None,
                 done: set, progress: Progress | None,
-                hasher: _Hasher | None = None) -> FileReport:
+                hasher: _Hasher | None = None,
+                done_paths: set[tuple[str, str]] | None = None) -> FileReport:
     shown = str(path.resolve())
     fr = FileReport(path=shown, kind=kind)
     started = _now()
@@ -1990,6 +1998,12 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
         begun = True
 
     try:
+        # A file of a path ingested before is most likely the same content again (a folder
+        # ingested day after day): its hash is awaited first, and an unchanged file costs
+        # one read instead of a validation and a lake lookup of every row. Other files are
+        # validated while their hash is worked out.
+        if done_paths and (shown, kind) in done_paths:
+            check_hash()
         src = _open_source(path, mapping, int(settings.ingest_chunk_rows))
         plan = _make_plan(kind, src, mapping, settings, path)
         src.use_typed(_typed_columns(plan))
@@ -2010,6 +2024,8 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
                 (good, raw), held = held, None
                 bad = no_bad
             else:
+                if not begun and hasher.peek() is not None:
+                    check_hash()            # content ingested before: stop here (skipped)
                 if chunk.height == 0:
                     continue
                 if deferred is not None:    # more rows follow: the last chunk's rows can go
@@ -2241,10 +2257,11 @@ def ingest_files(paths, settings, mapping: str | os.PathLike | Mapping | None = 
                 if undone:
                     report.notes.append("removed the rows of batches interrupted earlier "
                                         "(they had no ledger row): " + ", ".join(undone))
-                done = _done_hashes(lake)
+                done, done_paths = _done_hashes(lake)
                 for i, p in enumerate(files):
                     report.files.append(_ingest_one(p, kind, lake, settings, mp, done,
-                                                    progress, early if i == 0 else None))
+                                                    progress, early if i == 0 else None,
+                                                    done_paths))
     finally:
         if early is not None:
             early.cancel()      # e.g. the lake is locked: stop reading the file

@@ -214,6 +214,43 @@ def test_reingest_is_a_noop_that_says_so(tmp_path):
     assert lake.versions() == before
 
 
+def test_reingest_of_a_folder_reads_unchanged_files_once_and_validates_nothing(
+        tmp_path, monkeypatch):
+    # `fleetwatch ingest logs/` day after day: files of paths ingested before wait for their
+    # hash first, so an unchanged one is skipped without validating or looking up any row;
+    # a copy under a new path stops as soon as its hash is known (its hash comes late here)
+    import time
+
+    from fleetwatch import ingest as ing
+    path, mapping, _ = _write_messy(tmp_path / "in")
+    settings = _settings(tmp_path, ingest_chunk_rows=5)
+    ingest_files([path], settings, mapping=mapping)
+    lake = Lake.from_settings(settings)
+    before = lake.versions()
+    seen = []
+    real_validate = ing._validate
+
+    def counting(df, *a, **k):
+        seen.append(df.height)
+        return real_validate(df, *a, **k)
+
+    slow = ing._file_sha256
+
+    def late(p, stop=None):
+        time.sleep(0.3)
+        return slow(p, stop)
+
+    monkeypatch.setattr(ing, "_validate", counting)
+    monkeypatch.setattr(ing, "_file_sha256", late)
+    rep = ingest_files([path], settings, mapping=mapping)
+    assert [f.status for f in rep.files] == ["skipped"] and seen == []
+    copy = tmp_path / "in" / "copy.csv"
+    copy.write_bytes(path.read_bytes())
+    rep = ingest_files([copy], settings, mapping=mapping)
+    assert [f.status for f in rep.files] == ["skipped"]
+    assert lake.versions() == before and not lake.pending_batches()
+
+
 def test_content_hash_while_parsing_writes_nothing_before_it_is_known(tmp_path, monkeypatch):
     # the hash is worked out in a thread while the first chunk is parsed: a copy of an
     # ingested file is still skipped without any write, even when the hash comes late
