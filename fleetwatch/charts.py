@@ -57,6 +57,7 @@ SERIES_COLOURS: dict[str, str] = {
     "data": "#4D4D4D", "trend": "#0072B2", "limit": "#000000", "band": "#E69F00",
     "this week": "#CC79A7", "reference": "#56B4E9", "R": "#0072B2", "k_e": "#CC79A7",
     "commanded": "#000000", "actual": "#009E73", "maintenance": "#009E73",
+    "commanded range": "#C8C8C8",
     "median": "#0072B2", "p25-p75": "#56B4E9", "p10-p90": "#BFE3F6",
 }
 
@@ -426,7 +427,10 @@ def _iso(v: dt.date | dt.datetime) -> str:
 # ----------------------------------------------------------------------------- unit signals
 def _long_lines(df: pl.DataFrame, cols: dict[str, str], x: str, y_title: str, title: str,
                 fmt: str | None = None, dashes: dict[str, list[int]] | None = None,
-                interpolate: str = "linear") -> alt.Chart:
+                interpolate: str = "linear", also_in_legend: tuple[str, ...] = ()
+                ) -> alt.Chart:
+    """One line per column of ``cols`` (column -> series name). ``also_in_legend``: series
+    of other layers that share the colour scale and legend (e.g. a band)."""
     long = df.select([x] + list(cols)).unpivot(index=x, variable_name="col", value_name="v") \
         .with_columns(series=pl.col("col").replace_strict(cols)).drop_nulls("v")
     names = list(cols.values())
@@ -434,7 +438,7 @@ def _long_lines(df: pl.DataFrame, cols: dict[str, str], x: str, y_title: str, ti
         x=alt.X(f"{x}:T", scale=_UTC, title="time (UTC)"),
         y=alt.Y("v:Q", title=y_title, axis=alt.Axis(format=fmt) if fmt else alt.Axis(),
                 scale=alt.Scale(zero=False)),
-        color=alt.Color("series:N", scale=_series_scale(names),
+        color=alt.Color("series:N", scale=_series_scale(names + list(also_in_legend)),
                         legend=alt.Legend(title=None, orient="top")))
     # no per-point tooltips on these dense lines (hundreds of points): each one is an
     # expression the browser evaluates per point when the chart is drawn
@@ -449,12 +453,26 @@ def _long_lines(df: pl.DataFrame, cols: dict[str, str], x: str, y_title: str, ti
 def ratio_chart(df: pl.DataFrame, title: str = "Commanded against actual ratio"
                 ) -> alt.VConcatChart | alt.Chart:
     """Commanded (dashed, black) and actual (solid, green) ratio i = n_in/n_out as steps,
-    above the tracking error (act - cmd)/cmd in %. ``df``: views.ratio_series."""
+    above the tracking error (act - cmd)/cmd in %. Where a point stands for several windows
+    that were commanded different ratios, a grey band spans them (the line is their median
+    set point). ``df``: views.ratio_series."""
     if df.height == 0:
         return empty_chart(title)
+    spread = "ratio_cmd_lo" in df.columns and df.select(
+        (pl.col("ratio_cmd_hi") > pl.col("ratio_cmd_lo")).any()).item()
+    names = ("commanded", "actual", "commanded range") if spread else ("commanded", "actual")
     top = _long_lines(df, {"ratio_cmd": "commanded", "ratio_act": "actual"}, "ts",
                       "ratio i = n_in / n_out", title,
-                      dashes={"commanded": [5, 3], "actual": [1, 0]}, interpolate="step-after")
+                      dashes={"commanded": [5, 3], "actual": [1, 0]}, interpolate="step-after",
+                      also_in_legend=names[2:])
+    if spread:
+        rng = df.select("ts", "ratio_cmd_lo", "ratio_cmd_hi").with_columns(
+            series=pl.lit("commanded range"))
+        band = alt.Chart(_data(rng)).mark_area(interpolate="step-after").encode(
+            x=alt.X("ts:T", scale=_UTC, title="time (UTC)"),
+            y=alt.Y("ratio_cmd_lo:Q"), y2=alt.Y2("ratio_cmd_hi"),
+            color=alt.Color("series:N", scale=_series_scale(list(names)), legend=None))
+        top = alt.layer(band, top).properties(title=title, width=WIDTH, height=170)
     err = df.with_columns(err_pct=pl.col("ratio_error") * 100)
     low = alt.Chart(_data(err)).mark_line(color=SERIES_COLOURS["trend"]).encode(
         x=alt.X("ts:T", scale=_UTC, title="time (UTC)"),

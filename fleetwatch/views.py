@@ -864,10 +864,18 @@ def _bucketed(source: Any, unit_id: str, start: Any, end: Any, select: str,
 
 def ratio_series(source: Any, unit_id: str, start: Any = None, end: Any = None,
                  max_points: int = 2000) -> pl.DataFrame:
-    """Commanded against actual ratio over steady windows: ts, ratio_cmd, ratio_act,
-    ratio_error (-, (act - cmd)/cmd)."""
+    """Commanded against actual ratio over steady windows: ts, ratio_cmd, ratio_cmd_lo,
+    ratio_cmd_hi, ratio_act, ratio_error (-, (act - cmd)/cmd).
+
+    Where a bucket holds several windows, ratio_cmd is the median of their commanded
+    ratios taken as one of them (``quantile_disc``): a set point that was commanded, not an
+    average of two set points that never was; ratio_cmd_lo and ratio_cmd_hi give the range
+    commanded in the bucket. The actual ratio and the tracking error are means."""
     return _bucketed(source, unit_id, start, end,
-                     "avg(w.ratio_cmd_mean) AS ratio_cmd, avg(w.ratio_act_mean) AS ratio_act, "
+                     "quantile_disc(w.ratio_cmd_mean, 0.5) AS ratio_cmd, "
+                     "min(w.ratio_cmd_mean) AS ratio_cmd_lo, "
+                     "max(w.ratio_cmd_mean) AS ratio_cmd_hi, "
+                     "avg(w.ratio_act_mean) AS ratio_act, "
                      "avg(w.ratio_error) AS ratio_error", max_points,
                      where="w.steady_samples > 0")
 

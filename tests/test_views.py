@@ -234,6 +234,37 @@ def test_window_series_are_bucketed_to_a_point_budget(synth):
     assert vw.temperature_series(lake, "L1-U01", max_points=50).height <= 51
 
 
+def test_bucketed_commanded_ratio_is_a_set_point_that_was_commanded():
+    # three windows per bucket commanded 2.0, 2.0 and 3.0: an average (2.33) was never
+    # commanded; the series gives a commanded value and the range, and the chart a band
+    import duckdb
+
+    from fleetwatch import charts as ch
+
+    t0 = dt.datetime(2026, 3, 2, tzinfo=dt.timezone.utc)
+    n = 600
+    cmd = [(2.0, 2.0, 3.0)[i % 3] for i in range(n)]
+    w = pl.DataFrame({
+        "unit_id": ["U1"] * n,
+        "window_start": [t0 + dt.timedelta(minutes=10 * i) for i in range(n)],
+        "steady_samples": [60] * n, "ratio_cmd_mean": cmd,
+        "ratio_act_mean": [c * 1.02 for c in cmd], "ratio_error": [0.02] * n})
+    con = duckdb.connect()
+    con.register("windows", w)
+    r = vw.ratio_series(con, "U1", max_points=100)
+    assert r.height < n
+    assert set(r["ratio_cmd"].to_list()) <= {2.0, 3.0}
+    assert (r["ratio_cmd_lo"] == 2.0).all() and (r["ratio_cmd_hi"] == 3.0).all()
+    assert r["ratio_act"].mean() == pytest.approx(sum(cmd) / n * 1.02, rel=0.01)
+    spec = ch.ratio_chart(r).to_dict()
+    marks = [m.get("mark", {}) for m in spec["vconcat"][0]["layer"]]
+    assert any(isinstance(m, dict) and m.get("type") == "area" for m in marks)
+    # one window per point: no range, no band
+    one = vw.ratio_series(con, "U1", max_points=10_000)
+    assert one.height == n and (one["ratio_cmd_lo"] == one["ratio_cmd_hi"]).all()
+    assert "layer" not in ch.ratio_chart(one).to_dict()["vconcat"][0]
+
+
 def test_buckets_are_round_lengths_within_the_point_budget():
     day = 86400
     assert vw.bucket_seconds(90 * day, 300) == 8 * 3600          # 270 points of 8 h
