@@ -1504,13 +1504,16 @@ class _RawRows:
 
 # =========================================================================== dedupe
 
-def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
+def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame, one_pass: bool = False
+                  ) -> pl.DataFrame:
     """Rows already in the lake with the same key as ``cand``: _line, _lake_batch and the
     lake's values (``_lake_<col>``).
 
     Bounded: only Delta files whose min/max statistics overlap the chunk's keys are opened,
     key columns are streamed batch by batch and semi-joined with the chunk, and values are
-    read only for the keys that matched.
+    read only for the keys that matched. ``one_pass``: read keys and values together in
+    one scan instead, cheaper when most keys match (a file that overlaps what the lake
+    holds); the result is the same.
     """
     import pyarrow.dataset as pds
     key, vals = list(KEYS[kind]), list(VALUES[kind])
@@ -1530,6 +1533,8 @@ def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
     flt = ((pds.field("ts") >= pa.scalar(tmin, pa.timestamp("us", "UTC")))
            & (pds.field("ts") <= pa.scalar(tmax, pa.timestamp("us", "UTC")))
            & pds.field("unit_id").isin(units))
+    if one_pass:
+        return _lake_values(ds, keys, key, vals, flt, empty)
     hits = []
     for batch in ds.to_batches(columns=key, filter=flt, batch_size=1 << 18):
         if batch.num_rows:
@@ -1545,13 +1550,21 @@ def _lake_matches(lake: Lake, kind: str, cand: pl.DataFrame) -> pl.DataFrame:
             & (pds.field("ts") <= pa.scalar(hit["ts"].max(), pa.timestamp("us", "UTC")))
             & pds.field("unit_id").isin(pa.array(hit["unit_id"].unique().to_list(),
                                                  pa.string())))
+    return _lake_values(ds, hit, key, vals, flt2, empty)
+
+
+def _lake_values(ds, keys: pl.DataFrame, key: list[str], vals: list[str], flt,
+                 empty: pl.DataFrame) -> pl.DataFrame:
+    """The lake rows (``flt``) whose key is one of ``keys`` (with their ``_line``):
+    _line, _lake_batch and ``_lake_<col>`` values, batch by batch."""
     found = []
-    for batch in ds.to_batches(columns=key + vals + ["batch_id"], filter=flt2,
+    for batch in ds.to_batches(columns=key + vals + ["batch_id"], filter=flt,
                                batch_size=1 << 18):
         if batch.num_rows:
             lk = pl.from_arrow(pa.Table.from_batches([batch])).cast(
                 {k: keys.schema[k] for k in key}, strict=False)
-            found.append(hit.join(lk, on=key, how="inner"))
+            found.append(keys.join(lk, on=key, how="inner"))
+    found = [f for f in found if f.height]
     if not found:
         return empty
     got = pl.concat(found).unique("_line", keep="first").select(
@@ -1604,13 +1617,14 @@ def _dedupe_in_chunk(good: pl.DataFrame, plan: _Plan
     return cand, [conflict], dups
 
 
-def _dedupe_against_lake(cand: pl.DataFrame, plan: _Plan, lake: Lake
+def _dedupe_against_lake(cand: pl.DataFrame, plan: _Plan, lake: Lake, one_pass: bool = False
                          ) -> tuple[pl.Series | None, list[pl.DataFrame], int]:
     """Rows of ``cand`` whose key is already in the lake: (a mask of them in ``cand``'s
     order, None when there is none; conflicting_duplicate rows without raw text (the lake
-    holds other values); duplicate count (the lake holds the same values))."""
+    holds other values); duplicate count (the lake holds the same values)). ``one_pass``:
+    see ``_lake_matches``."""
     kind = plan.kind
-    m = _lake_matches(lake, kind, cand)
+    m = _lake_matches(lake, kind, cand, one_pass)
     if m.height == 0:
         return None, [], 0
     hit = cand.join(m, on="_line", how="inner")
@@ -2016,6 +2030,7 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
         no_bad: pl.DataFrame | None = None
         deferred: pa.Table | None = None          # accepted rows not yet handed to the writer
         deferred_box: _KeyBox | None = None
+        one_pass = False                          # see _lake_matches
         for item, bytes_done in _with_end(chunks):
             chunk = None if item is None else item[0]
             if chunk is None:           # the end: rows held back from the last chunk
@@ -2066,7 +2081,10 @@ def _ingest_one(path: Path, kind: str, lake: Lake, settings, mapping: Mapping | 
             # boxes of consecutive chunks disjoint, and nothing is waited for
             if box is not None:
                 writer.wait_for(box)
-            in_lake, more, more_dups = _dedupe_against_lake(cand, plan, lake)
+            in_lake, more, more_dups = _dedupe_against_lake(cand, plan, lake, one_pass)
+            # most keys of this chunk already in the lake: the next chunk (likely the same)
+            # reads keys and values in one scan
+            one_pass = in_lake is not None and int(in_lake.sum()) * 2 >= cand.height
             if in_lake is not None:
                 keep = ~in_lake
                 cand = cand.filter(keep)

@@ -599,6 +599,56 @@ def test_checks_skipped_by_chunk_figures_change_no_result(tmp_path, monkeypatch,
     assert fast[2].equals(full[2])
 
 
+def test_one_scan_lookup_of_a_file_the_lake_mostly_holds_changes_no_result(
+        tmp_path, monkeypatch):
+    # a second export that overlaps the first (kept, changed and new rows): once a chunk
+    # finds most of its keys in the lake, the next reads keys and values in one scan; the
+    # lake and the quarantine are the same as with the two-scan lookup
+    from fleetwatch import ingest as ing
+
+    first = _fleet_rows(n_ts=100)
+    second = []
+    for i, r in enumerate(_fleet_rows(n_ts=130)):
+        if i % 13 == 5 and i < 500:                 # same key, other value: a conflict
+            f = r.split(",")
+            f[6] = "2.5"
+            r = ",".join(f)
+        second.append(r)
+
+    def run(name):
+        folder = tmp_path / name
+        folder.mkdir()
+        settings = load_settings(folder / "proj", env={},
+                                 overrides={"ingest_chunk_rows": 20})
+        reps = []
+        for k, recs in enumerate((first, second)):
+            path = folder / f"export{k}.csv"
+            path.write_text(CANON_HEADER + "\n" + "\n".join(recs) + "\n")
+            reps.append(ingest_files([path], settings).files[0])
+        lake = Lake.from_settings(settings)
+        f = reps[1]
+        q = lake.read("quarantine").select("line", "rule", "raw").sort("line")
+        t = lake.read("telemetry").drop("batch_id").sort("unit_id", "ts")
+        return (f.rows_read, f.accepted, f.quarantined, f.duplicates), q, t
+
+    used = []
+    real = ing._lake_matches
+
+    def spy(lake, kind, cand, one_pass=False):
+        used.append(one_pass)
+        return real(lake, kind, cand, one_pass)
+
+    monkeypatch.setattr(ing, "_lake_matches", spy)
+    one = run("one")
+    assert any(used) and not all(used)
+    monkeypatch.setattr(ing, "_lake_matches",
+                        lambda lake, kind, cand, one_pass=False: real(lake, kind, cand))
+    two = run("two")
+    assert one[0] == two[0] == (650, 150, 39, 461)
+    assert one[1].equals(two[1]) and set(one[1]["rule"]) == {"conflicting_duplicate"}
+    assert one[2].equals(two[2])
+
+
 def test_rows_joined_for_the_last_commit_are_put_back_in_key_order():
     # the last chunk's rows and the rows held back from it go out in one commit, which the
     # writer does not sort again: each part is sorted, their union is not
