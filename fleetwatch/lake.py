@@ -124,8 +124,7 @@ class Lake:
     def __init__(self, path: str | os.PathLike, lock_timeout_s: float = 0.0):
         self.path = Path(path).expanduser().absolute()
         self.lock_timeout_s = float(lock_timeout_s)
-        self._kept_open: dict[str, object] = {}    # see latest_dataset
-        self._mine = threading.local()               # see _append_target
+        self._mine = threading.local()               # see _kept_table
         self._lock_term = 0                          # changes when the lock is taken or let go
 
     @classmethod
@@ -244,26 +243,37 @@ class Lake:
 
     def latest_dataset(self, name: str, file_pruning_predicate: str | None = None
                        ) -> pds.Dataset | None:
-        """``raw_dataset`` for lookups repeated by the writer (ingest, chunk after chunk):
-        the table stays open between calls and only the commits added since are read.
-        Opening it afresh replays its whole log, which grows by a commit per chunk. Only
-        while this object holds the writer lock (nobody else can change the tables); the
-        kept tables are dropped when the lock is taken and released."""
-        dt = self._kept_open.get(name)
+        """``raw_dataset`` for lookups repeated by the writer (ingest, chunk after chunk),
+        on the table this thread keeps open (``_kept_table``)."""
+        dt = self._kept_table(name)
+        return None if dt is None else self._raw_dataset(dt, name, file_pruning_predicate)
+
+    def _kept_table(self, name: str):
+        """The Delta table of ``name`` kept open by this thread while this object holds
+        the writer lock, brought up to date (only the commits since are read); a freshly
+        opened one when the lock is not held (others may change the tables); None when the
+        table does not exist. Opening a table replays its log (up to a hundred commits
+        since the last checkpoint): about 25 ms on a lake with a long log, for every chunk
+        ingest looks up and appends. A table object is not shared between threads (each
+        writer thread keeps its own), and the kept tables are dropped when the lock is
+        taken or released."""
+        if not _HELD.get(str(self._meta / "writer.lock")):
+            return self._delta(name)
+        mine = self._mine
+        if getattr(mine, "term", None) != self._lock_term:
+            mine.tables, mine.term = {}, self._lock_term
+        dt = mine.tables.get(name)
         if dt is None:
             dt = self._delta(name)
-            if dt is None:
-                return None
-            self._kept_open[name] = dt
-        else:
-            try:
-                dt.update_incremental()
-            except Exception as exc:  # deltalake raises its own hierarchy
-                self._kept_open.pop(name, None)
-                raise LakeError(f"cannot read table '{name}' in {self.path}: {exc}",
-                                hint="The table folder may be damaged; check its _delta_log."
-                                ) from exc
-        return self._raw_dataset(dt, name, file_pruning_predicate)
+            if dt is not None:
+                mine.tables[name] = dt
+            return dt
+        try:
+            dt.update_incremental()
+        except Exception:  # deltalake raises its own hierarchy: reopen (LakeError if damaged)
+            mine.tables.pop(name, None)
+            return self._kept_table(name)
+        return dt
 
     def pending_batches(self) -> list[str]:
         d = self._meta / "pending"
@@ -421,47 +431,20 @@ class Lake:
             partition_by = [partition_by]
         return list(partition_by) if partition_by else None
 
-    def _append_target(self, name: str):
-        """The table kept open by this thread for its appends while this object holds the
-        writer lock, brought up to date; None otherwise (or when the table does not exist
-        yet). Opening a table replays its log (up to a hundred commits since the last
-        checkpoint), and an append by path opened it twice, for the write and for the new
-        version: about 25 ms each on a lake with a long log, per chunk that ingest writes.
-        Each writer thread has its own: a table object is not shared between threads, and
-        an append whose snapshot is behind another thread's commit is committed after it
-        (Delta appends do not conflict)."""
-        if not _HELD.get(str(self._meta / "writer.lock")):
-            return None
-        mine = self._mine
-        if getattr(mine, "term", None) != self._lock_term:
-            mine.tables, mine.term = {}, self._lock_term
-        dt = mine.tables.get(name)
-        if dt is None:
-            dt = self._delta(name)
-            if dt is not None:
-                mine.tables[name] = dt
-            return dt
-        try:
-            dt.update_incremental()
-        except Exception:           # reopened below, with deltalake's error if it persists
-            mine.tables.pop(name, None)
-            return self._append_target(name) if self.has_table(name) else None
-        return dt
-
     def _write(self, name: str, tbl: pa.Table, mode: str, partition_by, predicate=None,
                schema_mode=None) -> int:
         from deltalake import WriterProperties, write_deltalake
         path = self._table_path(name)
         self.path.mkdir(parents=True, exist_ok=True)
-        kept = self._append_target(name) if mode == "append" else None
+        # an append by path opened the table twice (to write, then for the new version)
+        kept = self._kept_table(name) if mode == "append" else None
         try:
             write_deltalake(str(path) if kept is None else kept, tbl, mode=mode,
                             partition_by=partition_by, predicate=predicate,
                             schema_mode=schema_mode,
                             writer_properties=WriterProperties(compression=_COMPRESSION))
         except Exception as exc:
-            if kept is not None:
-                self._mine.tables.pop(name, None)
+            getattr(self._mine, "tables", {}).pop(name, None)
             raise LakeError(f"writing table '{name}' in {self.path} failed: {exc}",
                             hint="Check free disk space and permissions; if the table's schema "
                                  "changed, rebuild the table (analyze rewrites derived tables)."
@@ -580,13 +563,11 @@ class Lake:
             return
         token = self._acquire(lock, purpose)
         _HELD[key] = 1
-        self._kept_open.clear()     # another writer may have changed the tables meanwhile
-        self._lock_term += 1
+        self._lock_term += 1        # drops kept tables: another writer may have changed them
         try:
             yield self
         finally:
             _HELD.pop(key, None)
-            self._kept_open.clear()
             self._lock_term += 1
             try:
                 held = json.loads(lock.read_text())

@@ -66,8 +66,9 @@ def test_latest_dataset_follows_commits_made_while_it_is_kept_open(tmp_path):
         assert lake.latest_dataset("telemetry").count_rows() == 12
         lake.delete_where("telemetry", "batch_id = 'b1'")
         assert lake.latest_dataset("telemetry").count_rows() == 7
-        assert lake._kept_open
-    assert not lake._kept_open          # dropped with the lock: others may write meanwhile
+        kept = lake._kept_table("telemetry")
+        assert kept is not None and lake._kept_table("telemetry") is kept
+    assert lake._kept_table("telemetry") is not kept   # dropped with the lock: others may write
 
 
 def test_appends_under_the_lock_keep_a_table_open_per_thread(tmp_path):
@@ -78,8 +79,8 @@ def test_appends_under_the_lock_keep_a_table_open_per_thread(tmp_path):
     lake = Lake(tmp_path / "lake")
     with lake.writer("test"):
         assert lake.append("telemetry", _tele(3, batch="b0")) == 0
-        kept = lake._append_target("telemetry")
-        assert kept is not None and lake._append_target("telemetry") is kept
+        kept = lake._kept_table("telemetry")
+        assert kept is not None and lake._kept_table("telemetry") is kept
         errors = []
 
         def work(k):
@@ -98,7 +99,7 @@ def test_appends_under_the_lock_keep_a_table_open_per_thread(tmp_path):
         assert not errors
         assert lake.append("telemetry", _tele(1, unit="Z", batch="z")) == 7
         assert lake.version("telemetry") == 7
-    assert lake._append_target("telemetry") is None       # kept only under the lock
+    assert lake._kept_table("telemetry") is not kept       # kept only under the lock
     assert lake.read("telemetry").height == 3 + 12 + 1
 
 
